@@ -1,0 +1,9 @@
+module ripen
+
+go 1.26
+
+require (
+	go.uber.org/multierr v1.10.0 // indirect
+	go.uber.org/zap v1.28.0 // indirect
+	gonum.org/v1/gonum v0.17.0 // indirect
+)

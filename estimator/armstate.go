@@ -35,6 +35,8 @@ type ArmState struct {
 	delays     []uint64
 	delayCount uint64
 	delaySumMs uint64
+
+	edges []float64 // delay histogram edges, seconds (layout.DelayEdges)
 }
 
 // BucketKey names a pending bucket: the bucket of width Base*2^Level that
@@ -58,11 +60,13 @@ func NewArmState(l Layout) *ArmState {
 	if err := l.Validate(); err != nil {
 		panic(fmt.Sprintf("estimator: %v", err))
 	}
+	edges := l.DelayEdges()
 	return &ArmState{
 		layout:    l,
 		watermark: noWatermark,
 		buckets:   make(map[BucketKey]BucketCounts),
-		delays:    make([]uint64, len(l.DelayEdges())-1),
+		delays:    make([]uint64, len(edges)-1),
+		edges:     edges,
 	}
 }
 
@@ -178,21 +182,26 @@ func (s *ArmState) AddConversion(clickTime, convTime int64) {
 	if d < 0 {
 		d = 0
 	}
-	s.delays[s.layout.delayBin(d)]++
+	s.delays[delayBin(s.edges, s.layout.BinsPerDecade, d)]++
 	s.delayCount++
 	s.delaySumMs += uint64(d)
 }
 
 // delayBin returns the histogram bin of a delay of d milliseconds.
 func (l Layout) delayBin(d int64) int {
-	edges := l.DelayEdges()
+	return delayBin(l.DelayEdges(), l.BinsPerDecade, d)
+}
+
+// delayBin returns the bin of a delay of d milliseconds among edges (from
+// Layout.DelayEdges with binsPerDecade).
+func delayBin(edges []float64, binsPerDecade int, d int64) int {
 	sec := float64(d) / 1000
 	n := len(edges) - 1
 	if sec < edges[1] {
 		return 0
 	}
 	// Index from the log, then correct for rounding against the edges.
-	i := int(math.Floor(math.Log10(sec/firstDelayEdge)*float64(l.BinsPerDecade))) + 1
+	i := int(math.Floor(math.Log10(sec/firstDelayEdge)*float64(binsPerDecade))) + 1
 	i = max(1, min(i, n-1))
 	for i > 1 && sec < edges[i] {
 		i--
@@ -295,7 +304,7 @@ func (s *ArmState) sortedKeys() []BucketKey {
 // model is fitted to. Each pending bucket becomes one bin at the age of its
 // midpoint, clamped to [0, Window).
 func (s *ArmState) FitData() FitData {
-	edges := s.layout.DelayEdges()
+	edges := slices.Clone(s.edges)
 	w := s.layout.Window.Seconds()
 	d := FitData{
 		Window:             w,

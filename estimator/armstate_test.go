@@ -220,7 +220,7 @@ func TestDelayBinsMatchEdges(t *testing.T) {
 	}
 	r := rand.New(rand.NewPCG(2, 2))
 	for i := 0; i < 20000; i++ {
-		d := int64(math.Exp(r.Float64()*math.Log(float64(l.Window.Milliseconds()))))
+		d := int64(math.Exp(r.Float64() * math.Log(float64(l.Window.Milliseconds()))))
 		k := l.delayBin(d)
 		sec := float64(d) / 1000
 		if sec < edges[k] || (sec >= edges[k+1] && k < len(edges)-2) {

@@ -69,6 +69,10 @@ func BenchmarkRefit(b *testing.B) {
 	for _, sz := range benchSizes {
 		b.Run(sz.name, func(b *testing.B) {
 			s := benchState(b, sz.clicks)
+			enc, err := s.MarshalBinary()
+			if err != nil {
+				b.Fatal(err)
+			}
 			b.ResetTimer()
 			for range b.N {
 				d := s.FitData()
@@ -76,6 +80,8 @@ func BenchmarkRefit(b *testing.B) {
 					b.Fatal(err)
 				}
 			}
+			// After the loop: ResetTimer deletes reported metrics.
+			b.ReportMetric(float64(len(enc)), "state-bytes/arm")
 		})
 	}
 }

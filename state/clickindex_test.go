@@ -1,0 +1,204 @@
+package state
+
+import (
+	"fmt"
+	"reflect"
+	"testing"
+	"time"
+
+	"github.com/redis/go-redis/v9"
+
+	"ripen/state/redistest"
+)
+
+// TestClickIndexJoin covers the join both ways round: click first (found),
+// conversion first (parked, then claimed by the click), redelivery and
+// duplicate conversions, TTLs, and the deadline sweep.
+func TestClickIndexJoin(t *testing.T) {
+	s, rdb, _ := newStore(t, Options{ClickTTLSlack: 10 * time.Minute, OrphanTTL: 2 * time.Hour})
+	ctx := testCtx(t)
+	window := time.Hour
+
+	// Click first.
+	orphans, err := s.PutClicks(ctx, []ClickRecord{{ClickID: "k1", Experiment: "e", Arm: "red", TS: t0, Window: window}})
+	if err != nil || len(orphans) != 0 {
+		t.Fatalf("put: %v %v", orphans, err)
+	}
+	ttl, _ := rdb.PTTL(ctx, s.keys.click("k1")).Result()
+	if want := window + 10*time.Minute; ttl <= want-time.Minute || ttl > want {
+		t.Errorf("click TTL %v, want about %v", ttl, want)
+	}
+	conv := func(id, origin string, part int, deadline int64) ConversionLookup {
+		return ConversionLookup{ClickID: id, TS: t0 + 5000, Origin: origin, Raw: []byte("raw:" + origin), Topic: "convs", Partition: part, Deadline: deadline}
+	}
+	res, err := s.LookupConversions(ctx, []ConversionLookup{
+		conv("k1", "convs/0/1", 0, t0+100),
+		conv("k2", "convs/0/2", 0, t0+200), // no click yet: parked
+		conv("k2", "convs/0/2", 0, t0+200), // the same again: redelivery
+		conv("k2", "convs/1/9", 1, t0+300), // another conversion of k2: duplicate
+		conv("k3", "convs/0/3", 0, t0+400), // parked, never claimed
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	want := []LookupResult{
+		{Status: LookupFound, Click: ClickEntry{Experiment: "e", Arm: "red", TS: t0}},
+		{Status: LookupParked},
+		{Status: LookupParkedBefore},
+		{Status: LookupDuplicate, Origin: "convs/0/2"},
+		{Status: LookupParked},
+	}
+	if !reflect.DeepEqual(res, want) {
+		t.Fatalf("lookups:\n got  %+v\n want %+v", res, want)
+	}
+	ttl, _ = rdb.PTTL(ctx, s.keys.orphan("k2")).Result()
+	if ttl <= 2*time.Hour-time.Minute || ttl > 2*time.Hour {
+		t.Errorf("orphan TTL %v, want about 2h", ttl)
+	}
+	due, _ := rdb.ZRangeWithScores(ctx, s.keys.due("convs", 0), 0, -1).Result()
+	if len(due) != 2 || due[0].Member != "k2" || due[0].Score != float64(t0+200) || due[1].Member != "k3" {
+		t.Errorf("due set %v, want k2@%d and k3", due, t0+200)
+	}
+	if n, _ := rdb.ZCard(ctx, s.keys.due("convs", 1)).Result(); n != 0 {
+		t.Errorf("duplicate was added to its partition's due set")
+	}
+
+	// The click of k2 arrives and claims the orphan; a redelivered click
+	// claims it again, marked as claimed before.
+	for i, wantClaimed := range []bool{false, true} {
+		orphans, err := s.PutClicks(ctx, []ClickRecord{
+			{ClickID: "k2", Experiment: "e", Arm: "blue", TS: t0 + 1000, Window: window},
+			{ClickID: "k4", Experiment: "e", Arm: "blue", TS: t0 + 1000, Window: window},
+		})
+		if err != nil {
+			t.Fatal(err)
+		}
+		wantO := []Orphan{{ClickID: "k2", TS: t0 + 5000, Origin: "convs/0/2", Topic: "convs", Partition: 0, Deadline: t0 + 200, Raw: []byte("raw:convs/0/2"), Claimed: wantClaimed}}
+		if !reflect.DeepEqual(orphans, wantO) {
+			t.Fatalf("put %d: orphans %+v, want %+v", i, orphans, wantO)
+		}
+	}
+	res, err = s.LookupConversions(ctx, []ConversionLookup{conv("k2", "convs/0/2", 0, t0+200)})
+	if err != nil || res[0].Status != LookupFound || res[0].Click.Arm != "blue" {
+		t.Fatalf("lookup after click: %+v %v", res, err)
+	}
+
+	// Sweep: nothing due before the deadlines; then k3 expires (returned),
+	// k2 was claimed (removed silently).
+	if got, err := s.DueOrphans(ctx, "convs", 0, t0+199); err != nil || len(got) != 0 {
+		t.Fatalf("early sweep: %v %v", got, err)
+	}
+	got, err := s.DueOrphans(ctx, "convs", 0, t0+1000)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(got) != 1 || got[0].ClickID != "k3" || got[0].Origin != "convs/0/3" || string(got[0].Raw) != "raw:convs/0/3" || got[0].Claimed {
+		t.Fatalf("sweep returned %+v, want k3 unclaimed", got)
+	}
+	for _, k := range []string{s.keys.orphan("k2"), s.keys.orphan("k3"), s.keys.due("convs", 0)} {
+		if n, _ := rdb.Exists(ctx, k).Result(); n != 0 {
+			t.Errorf("%s still exists after the sweep", k)
+		}
+	}
+	if got, err := s.DueOrphans(ctx, "convs", 0, t0+1000); err != nil || len(got) != 0 {
+		t.Fatalf("second sweep: %v %v", got, err)
+	}
+}
+
+// TestOrphanCap parks at most MaxParkedOrphans per partition.
+func TestOrphanCap(t *testing.T) {
+	s, _, _ := newStore(t, Options{MaxParkedOrphans: 2})
+	ctx := testCtx(t)
+	var convs []ConversionLookup
+	for i := range 4 {
+		convs = append(convs, ConversionLookup{ClickID: fmt.Sprintf("m%d", i), Origin: fmt.Sprintf("convs/0/%d", i), Topic: "convs", Partition: 0, Deadline: t0})
+	}
+	convs = append(convs, ConversionLookup{ClickID: "n", Origin: "convs/1/0", Topic: "convs", Partition: 1, Deadline: t0})
+	res, err := s.LookupConversions(ctx, convs)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var got []LookupStatus
+	for _, r := range res {
+		got = append(got, r.Status)
+	}
+	want := []LookupStatus{LookupParked, LookupParked, LookupCapExceeded, LookupCapExceeded, LookupParked}
+	if !reflect.DeepEqual(got, want) {
+		t.Fatalf("statuses %v, want %v", got, want)
+	}
+	// Still full in the next batch; room again after the sweep.
+	res, _ = s.LookupConversions(ctx, convs[2:3])
+	if res[0].Status != LookupCapExceeded {
+		t.Fatalf("next batch: %v, want cap exceeded", res[0].Status)
+	}
+	if exp, err := s.DueOrphans(ctx, "convs", 0, t0); err != nil || len(exp) != 2 {
+		t.Fatalf("sweep: %d %v", len(exp), err)
+	}
+	res, _ = s.LookupConversions(ctx, convs[2:3])
+	if res[0].Status != LookupParked {
+		t.Fatalf("after sweep: %v, want parked", res[0].Status)
+	}
+}
+
+// TestScriptsAfterRestart restarts the server (its script cache is empty)
+// and checks that pipelined and single scripts reload themselves, and that
+// calls while it is down fail as retriable.
+func TestScriptsAfterRestart(t *testing.T) {
+	srv := redistest.Start(t)
+	// Few retries, so that the calls made while the server is down fail
+	// quickly.
+	rdb := redis.NewClient(&redis.Options{Addr: srv.Addr(), MaxRetries: -1, DialerRetries: 1, DialTimeout: 200 * time.Millisecond})
+	t.Cleanup(func() { _ = rdb.Close() })
+	s, err := New(rdb, Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	ctx := testCtx(t)
+	put := func() error {
+		_, err := s.PutClicks(ctx, []ClickRecord{{ClickID: "k", Experiment: "e", Arm: "a", TS: t0, Window: time.Hour}})
+		return err
+	}
+	if err := put(); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := s.Apply(ctx, oneClick(1, 0, 0, 0)); err != nil {
+		t.Fatal(err)
+	}
+	srv.Stop()
+	for name, call := range map[string]func() error{
+		"put clicks": put,
+		"apply":      func() error { _, err := s.Apply(ctx, oneClick(1, 0, 1, 1)); return err },
+		"load":       func() error { _, err := s.Load(ctx, "e"); return err },
+		"resume":     func() error { _, err := s.Resume(ctx, "clicks", 0); return err },
+	} {
+		if err := call(); err == nil || !IsRetriable(err) {
+			t.Errorf("%s while down: %v, want a retriable error", name, err)
+		}
+	}
+	srv.Restart()
+	if err := put(); err != nil {
+		t.Fatalf("put clicks after restart: %v", err)
+	}
+	if _, err := s.Apply(ctx, oneClick(1, 0, 0, 0)); err != nil {
+		t.Fatalf("apply after restart: %v", err)
+	}
+	if n := clicksOf(t, s, "a"); n != 1 {
+		t.Fatalf("clicks after restart %d, want 1", n)
+	}
+}
+
+// TestClickBytes measures the memory a click index entry costs, with
+// MEMORY USAGE per key and with the server's used_memory growth.
+func TestClickBytes(t *testing.T) {
+	s, rdb, _ := newStore(t, Options{})
+	ctx := testCtx(t)
+	perKey, perClick := measureClickBytes(t, ctx, s, rdb, 20_000)
+	t.Logf("click index: MEMORY USAGE %.1f bytes/key, used_memory growth %.1f bytes/click", perKey, perClick)
+	// A project budget, not a published figure: an entry (20-character id,
+	// 13-character experiment) must stay under 160 bytes by MEMORY USAGE
+	// and 300 bytes of server memory, hash tables and expiry index
+	// included, so that tens of millions of clicks fit a few GiB.
+	if perKey <= 0 || perKey > 160 || perClick > 300 {
+		t.Errorf("click entry costs %.1f (key) / %.1f (server) bytes, budget 160 / 300", perKey, perClick)
+	}
+}

@@ -1,0 +1,479 @@
+package state
+
+import (
+	"context"
+	"fmt"
+	"slices"
+	"strconv"
+	"strings"
+
+	"github.com/redis/go-redis/v9"
+
+	"ripen/estimator"
+)
+
+// Experiment is the stored state of one experiment at one instant.
+type Experiment struct {
+	// ID is the experiment id.
+	ID string
+	// Layout is the layout every arm state has.
+	Layout estimator.Layout
+	// Watermark is the highest delta watermark applied (Unix ms).
+	Watermark int64
+	// Arms are the arm names, sorted.
+	Arms []string
+	// States holds each arm's state, canonical at Watermark.
+	States map[string]*estimator.ArmState
+	// Offsets are the offsets applied per partition.
+	Offsets map[TopicPartition]AppliedOffset
+	// Held counts, per arm, conversions stored but left out of States
+	// because their click's delta has not landed yet (nil if none).
+	Held map[string]uint64
+}
+
+// AppliedOffset is the last offset of a partition applied to an experiment
+// and the consumer generation that applied it.
+type AppliedOffset struct {
+	// Generation is the consumer-group generation of the last writer.
+	Generation int32
+	// Offset is the last offset applied (inclusive).
+	Offset int64
+}
+
+// loadAttempts bounds Load's retries when arms are added while it reads.
+const loadAttempts = 16
+
+// Load reads an experiment's state in one atomic script call and rebuilds
+// each arm's estimator state, canonical at the stored watermark. It returns
+// an error matching ErrNotFound if nothing was applied to the experiment.
+func (s *Store) Load(ctx context.Context, experiment string) (*Experiment, error) {
+	const op = "load"
+	if err := validExperiment(experiment); err != nil {
+		return nil, permanent(op, err)
+	}
+	for range loadAttempts {
+		names, err := s.rdb.SMembers(ctx, s.keys.arms(experiment)).Result()
+		if err != nil {
+			return nil, redisFailure(op, fmt.Errorf("experiment %q: arms: %w", experiment, err))
+		}
+		slices.Sort(names)
+		keys := []string{s.keys.meta(experiment), s.keys.arms(experiment), s.keys.offsets(experiment)}
+		args := make([]any, len(names))
+		for i, n := range names {
+			keys = append(keys, s.keys.arm(experiment, n))
+			args[i] = n
+		}
+		reply, err := loadScript.Run(ctx, s.rdb, keys, args...).Slice()
+		if err != nil {
+			return nil, redisFailure(op, fmt.Errorf("experiment %q: %w", experiment, err))
+		}
+		status, _ := reply[0].(string)
+		switch status {
+		case "retry":
+			continue
+		case "missing":
+			return nil, permanent(op, fmt.Errorf("experiment %q: %w", experiment, ErrNotFound))
+		case "ok":
+		default:
+			return nil, permanent(op, fmt.Errorf("experiment %q: %w: load status %q", experiment, ErrCorrupt, status))
+		}
+		if len(reply) != 3+len(names) {
+			return nil, permanent(op, fmt.Errorf("experiment %q: %w: load reply of %d elements", experiment, ErrCorrupt, len(reply)))
+		}
+		e, err := buildExperiment(experiment, names, reply[1:])
+		if err != nil {
+			return nil, permanent(op, fmt.Errorf("experiment %q: %w", experiment, err))
+		}
+		return e, nil
+	}
+	return nil, &Error{Op: op, Retriable: true, Err: fmt.Errorf("experiment %q: %w: arms kept changing", experiment, ErrConflict)}
+}
+
+// buildExperiment parses the load script's meta, offsets and arm hashes.
+func buildExperiment(id string, names []string, parts []any) (*Experiment, error) {
+	meta, err := flatHash(parts[0])
+	if err != nil {
+		return nil, fmt.Errorf("meta: %w", err)
+	}
+	layout, wm, err := parseMeta(meta)
+	if err != nil {
+		return nil, err
+	}
+	offs, err := flatHash(parts[1])
+	if err != nil {
+		return nil, fmt.Errorf("offsets: %w", err)
+	}
+	e := &Experiment{ID: id, Layout: layout, Watermark: wm, Arms: names, States: make(map[string]*estimator.ArmState, len(names))}
+	if e.Offsets, err = parseOffsets(offs); err != nil {
+		return nil, err
+	}
+	for i, name := range names {
+		h, err := flatHash(parts[2+i])
+		if err != nil {
+			return nil, fmt.Errorf("arm %q: %w", name, err)
+		}
+		c, err := canonicalize(layout, wm, h)
+		if err != nil {
+			return nil, fmt.Errorf("arm %q: %w", name, err)
+		}
+		st, held, err := c.state(layout, wm)
+		if err != nil {
+			return nil, fmt.Errorf("arm %q: %w", name, err)
+		}
+		e.States[name] = st
+		if held > 0 {
+			if e.Held == nil {
+				e.Held = make(map[string]uint64)
+			}
+			e.Held[name] = held
+		}
+	}
+	return e, nil
+}
+
+// parseMeta reads the layout and watermark of a meta hash.
+func parseMeta(meta map[string]string) (estimator.Layout, int64, error) {
+	ls, ok := meta["layout"]
+	if !ok {
+		return estimator.Layout{}, 0, fmt.Errorf("%w: no layout", ErrCorrupt)
+	}
+	layout, err := decodeLayout(ls)
+	if err != nil {
+		return estimator.Layout{}, 0, err
+	}
+	ws, ok := meta["wm"]
+	if !ok {
+		return estimator.Layout{}, 0, fmt.Errorf("%w: no watermark", ErrCorrupt)
+	}
+	wm, err := parseInt(ws)
+	if err != nil {
+		return estimator.Layout{}, 0, fmt.Errorf("watermark: %w", err)
+	}
+	return layout, wm, nil
+}
+
+// Offsets returns the offsets applied to an experiment per partition
+// (empty if none), for the consumer to filter redelivered events.
+func (s *Store) Offsets(ctx context.Context, experiment string) (map[TopicPartition]AppliedOffset, error) {
+	const op = "offsets"
+	if err := validExperiment(experiment); err != nil {
+		return nil, permanent(op, err)
+	}
+	h, err := s.rdb.HGetAll(ctx, s.keys.offsets(experiment)).Result()
+	if err != nil {
+		return nil, redisFailure(op, fmt.Errorf("experiment %q: %w", experiment, err))
+	}
+	offs, err := parseOffsets(h)
+	if err != nil {
+		return nil, permanent(op, fmt.Errorf("experiment %q: %w", experiment, err))
+	}
+	return offs, nil
+}
+
+// parseOffsets reads an offsets hash: "<topic>/<partition>" ->
+// "<generation>:<offset>".
+func parseOffsets(h map[string]string) (map[TopicPartition]AppliedOffset, error) {
+	out := make(map[TopicPartition]AppliedOffset, len(h))
+	for f, v := range h {
+		tp, err := parsePartitionField(f)
+		if err != nil {
+			return nil, err
+		}
+		g, o, ok := strings.Cut(v, ":")
+		gen, err1 := strconv.ParseInt(g, 10, 32)
+		off, err2 := strconv.ParseInt(o, 10, 64)
+		if !ok || err1 != nil || err2 != nil {
+			return nil, fmt.Errorf("%w: offset %q of %s", ErrCorrupt, v, f)
+		}
+		out[tp] = AppliedOffset{Generation: int32(gen), Offset: off}
+	}
+	return out, nil
+}
+
+// flatHash converts a flat field/value array (HGETALL's reply inside a
+// script reply) to a map.
+func flatHash(v any) (map[string]string, error) {
+	arr, ok := v.([]any)
+	if !ok || len(arr)%2 != 0 {
+		return nil, fmt.Errorf("%w: hash reply %T", ErrCorrupt, v)
+	}
+	h := make(map[string]string, len(arr)/2)
+	for i := 0; i < len(arr); i += 2 {
+		f, ok1 := arr[i].(string)
+		val, ok2 := arr[i+1].(string)
+		if !ok1 || !ok2 {
+			return nil, fmt.Errorf("%w: hash entry %v=%v", ErrCorrupt, arr[i], arr[i+1])
+		}
+		h[f] = val
+	}
+	return h, nil
+}
+
+// armFields are the parsed counts of an arm hash, in whatever (possibly
+// finer than canonical) buckets they were written.
+type armFields struct {
+	clicks, converted  map[estimator.BucketKey]uint64
+	maturedClicks      uint64
+	maturedConversions uint64
+	delays             []uint64
+	delayCount         uint64
+	delaySumMs         uint64
+}
+
+// parseArmHash reads an arm hash; see the package documentation for its
+// fields.
+func parseArmHash(h map[string]string, nbins int) (armFields, error) {
+	a := armFields{
+		clicks:    make(map[estimator.BucketKey]uint64),
+		converted: make(map[estimator.BucketKey]uint64),
+		delays:    make([]uint64, nbins),
+	}
+	for f, v := range h {
+		n, err := strconv.ParseInt(v, 10, 64)
+		if err != nil || n < 0 {
+			return a, fmt.Errorf("%w: field %s=%q", ErrCorrupt, f, v)
+		}
+		u := uint64(n)
+		switch {
+		case f == "mc":
+			a.maturedClicks = u
+		case f == "mv":
+			a.maturedConversions = u
+		case f == "dn":
+			a.delayCount = u
+		case f == "ds":
+			a.delaySumMs = u
+		case strings.HasPrefix(f, "d:"):
+			i, err := strconv.Atoi(f[2:])
+			if err != nil || i < 0 || i >= nbins {
+				return a, fmt.Errorf("%w: delay field %q of %d bins", ErrCorrupt, f, nbins)
+			}
+			a.delays[i] = u
+		case strings.HasPrefix(f, "b:"), strings.HasPrefix(f, "v:"):
+			lv, idx, ok := strings.Cut(f[2:], ":")
+			level, err1 := strconv.ParseUint(lv, 10, 8)
+			index, err2 := strconv.ParseInt(idx, 10, 64)
+			if !ok || err1 != nil || err2 != nil {
+				return a, fmt.Errorf("%w: bucket field %q", ErrCorrupt, f)
+			}
+			k := estimator.BucketKey{Level: uint8(level), Index: index}
+			if f[0] == 'b' {
+				a.clicks[k] += u
+			} else {
+				a.converted[k] += u
+			}
+		default:
+			return a, fmt.Errorf("%w: unknown arm field %q", ErrCorrupt, f)
+		}
+	}
+	return a, nil
+}
+
+// canonArm is an arm's counts re-keyed to canonical buckets at one
+// watermark.
+type canonArm struct {
+	clicks, converted  map[estimator.BucketKey]uint64
+	maturedClicks      uint64
+	maturedConversions uint64
+	delays             []uint64
+	delayCount         uint64
+	delaySumMs         uint64
+}
+
+// canonicalize re-keys an arm hash to canonical buckets at wm.
+//
+// Click and conversion counts of one click time may sit in buckets of
+// different levels (a conversion is keyed at its own delta's watermark), so
+// each kind is re-keyed on its own by estimator.FromSnapshot, with
+// conversions posing as clicks (FromSnapshot checks each input bucket's
+// conversions against its clicks).
+func canonicalize(l estimator.Layout, wm int64, h map[string]string) (canonArm, error) {
+	nbins := len(l.DelayEdges()) - 1
+	a, err := parseArmHash(h, nbins)
+	if err != nil {
+		return canonArm{}, err
+	}
+	rekey := func(m map[estimator.BucketKey]uint64) (map[estimator.BucketKey]uint64, uint64, error) {
+		snap := estimator.ArmSnapshot{Layout: l, Watermark: wm, Delays: make([]uint64, nbins)}
+		for k, n := range m {
+			if n > 0 {
+				snap.Buckets = append(snap.Buckets, estimator.Bucket{BucketKey: k, BucketCounts: estimator.BucketCounts{Clicks: n}})
+			}
+		}
+		st, err := estimator.FromSnapshot(snap)
+		if err != nil {
+			return nil, 0, err
+		}
+		out := st.Snapshot()
+		res := make(map[estimator.BucketKey]uint64, len(out.Buckets))
+		for _, b := range out.Buckets {
+			res[b.BucketKey] = b.Clicks
+		}
+		return res, out.MaturedClicks, nil
+	}
+	c := canonArm{delays: a.delays, delayCount: a.delayCount, delaySumMs: a.delaySumMs}
+	var mc, mv uint64
+	if c.clicks, mc, err = rekey(a.clicks); err != nil {
+		return canonArm{}, fmt.Errorf("%w: clicks: %w", ErrCorrupt, err)
+	}
+	if c.converted, mv, err = rekey(a.converted); err != nil {
+		return canonArm{}, fmt.Errorf("%w: conversions: %w", ErrCorrupt, err)
+	}
+	c.maturedClicks = a.maturedClicks + mc
+	c.maturedConversions = a.maturedConversions + mv
+	return c, nil
+}
+
+// state builds the estimator state at wm. Conversions beyond their
+// bucket's clicks are held back and counted in held: the delta of a
+// conversion can land before the delta of its click when the two are
+// consumed from different partitions, and they show once the click lands.
+func (c canonArm) state(l estimator.Layout, wm int64) (st *estimator.ArmState, held uint64, err error) {
+	snap := estimator.ArmSnapshot{
+		Layout:             l,
+		Watermark:          wm,
+		MaturedClicks:      c.maturedClicks,
+		MaturedConversions: min(c.maturedConversions, c.maturedClicks),
+		Delays:             c.delays,
+		DelayCount:         c.delayCount,
+		DelaySumMs:         c.delaySumMs,
+	}
+	held = c.maturedConversions - snap.MaturedConversions
+	for k, n := range c.clicks {
+		v := min(c.converted[k], n)
+		held += c.converted[k] - v
+		snap.Buckets = append(snap.Buckets, estimator.Bucket{BucketKey: k, BucketCounts: estimator.BucketCounts{Clicks: n, Converted: v}})
+	}
+	for k, n := range c.converted {
+		if _, ok := c.clicks[k]; !ok {
+			held += n
+		}
+	}
+	st, err = estimator.FromSnapshot(snap)
+	if err != nil {
+		return nil, 0, fmt.Errorf("%w: %w", ErrCorrupt, err)
+	}
+	return st, held, nil
+}
+
+// fields is the arm hash holding exactly c's counts, zero fields left out.
+// Held-back conversions are kept.
+func (c canonArm) fields() map[string]string {
+	h := make(map[string]string)
+	put := func(f string, n uint64) {
+		if n > 0 {
+			h[f] = strconv.FormatUint(n, 10)
+		}
+	}
+	for k, n := range c.clicks {
+		put(bucketField('b', k), n)
+	}
+	for k, n := range c.converted {
+		put(bucketField('v', k), n)
+	}
+	put("mc", c.maturedClicks)
+	put("mv", c.maturedConversions)
+	for i, n := range c.delays {
+		put("d:"+strconv.Itoa(i), n)
+	}
+	put("dn", c.delayCount)
+	put("ds", c.delaySumMs)
+	return h
+}
+
+// CompactResult says what Compact did.
+type CompactResult struct {
+	// FieldsBefore and FieldsAfter count the arm hash's fields.
+	FieldsBefore, FieldsAfter int
+	// Attempts is the number of compare-and-set attempts made.
+	Attempts int
+}
+
+// Compact rewrites one arm's hash into canonical form at the stored
+// watermark: exactly one field per canonical bucket, matured and delay
+// totals, no zero fields. It reads the hash, computes the canonical form and
+// replaces the hash only if it still holds what was read (compare-and-set),
+// retrying up to Options.CompactAttempts times, so it is safe beside
+// concurrent Apply calls. Load returns the same state before and after.
+func (s *Store) Compact(ctx context.Context, experiment, arm string) (CompactResult, error) {
+	const op = "compact"
+	if err := validExperiment(experiment); err != nil {
+		return CompactResult{}, permanent(op, err)
+	}
+	akey, mkey := s.keys.arm(experiment, arm), s.keys.meta(experiment)
+	var res CompactResult
+	for res.Attempts < s.opts.CompactAttempts {
+		res.Attempts++
+		var hcmd *redis.MapStringStringCmd
+		var mcmd *redis.SliceCmd
+		_, err := s.rdb.TxPipelined(ctx, func(p redis.Pipeliner) error {
+			hcmd = p.HGetAll(ctx, akey)
+			mcmd = p.HMGet(ctx, mkey, "layout", "wm")
+			return nil
+		})
+		if err != nil {
+			return res, redisFailure(op, fmt.Errorf("experiment %q arm %q: read: %w", experiment, arm, err))
+		}
+		h := hcmd.Val()
+		res.FieldsBefore = len(h)
+		if len(h) == 0 {
+			return res, nil
+		}
+		meta := map[string]string{}
+		for i, f := range []string{"layout", "wm"} {
+			if v, ok := mcmd.Val()[i].(string); ok {
+				meta[f] = v
+			}
+		}
+		layout, wm, err := parseMeta(meta)
+		if err != nil {
+			return res, permanent(op, fmt.Errorf("experiment %q: %w", experiment, err))
+		}
+		c, err := canonicalize(layout, wm, h)
+		if err != nil {
+			return res, permanent(op, fmt.Errorf("experiment %q arm %q: %w", experiment, arm, err))
+		}
+		want := c.fields()
+		res.FieldsAfter = len(want)
+		if maps2Equal(h, want) {
+			return res, nil
+		}
+		args := make([]any, 0, 1+2*len(h)+2*len(want))
+		args = append(args, len(h))
+		for _, f := range sortedKeys(h) {
+			args = append(args, f, h[f])
+		}
+		for _, f := range sortedKeys(want) {
+			args = append(args, f, want[f])
+		}
+		ok, err := compactScript.Run(ctx, s.rdb, []string{akey}, args...).Int()
+		if err != nil {
+			return res, redisFailure(op, fmt.Errorf("experiment %q arm %q: %w", experiment, arm, err))
+		}
+		if ok == 1 {
+			return res, nil
+		}
+	}
+	return res, &Error{Op: op, Retriable: true, Err: fmt.Errorf("experiment %q arm %q: %w after %d attempts", experiment, arm, ErrConflict, res.Attempts)}
+}
+
+func maps2Equal(a, b map[string]string) bool {
+	if len(a) != len(b) {
+		return false
+	}
+	for k, v := range a {
+		if w, ok := b[k]; !ok || w != v {
+			return false
+		}
+	}
+	return true
+}
+
+func sortedKeys(m map[string]string) []string {
+	ks := make([]string, 0, len(m))
+	for k := range m {
+		ks = append(ks, k)
+	}
+	slices.Sort(ks)
+	return ks
+}

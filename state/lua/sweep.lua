@@ -1,0 +1,34 @@
+-- sweep.lua: settles one orphan whose deadline entry came due in its
+-- partition's due set.
+--
+-- KEYS[1] orphan <p>:{k:<click>}:o
+-- ARGV[1] topic; ARGV[2] partition; ARGV[3] watermark (event time)
+--
+-- Reply, first element a status:
+--   {"gone"}               no orphan (expired by TTL or already settled)
+--   {"other"}              the orphan belongs to another partition; kept
+--   {"claimed"}            it was joined to its click; deleted now
+--   {"later", deadline}    its deadline is after the watermark; kept
+--   {"expired", fields}    unclaimed past its deadline; deleted now, its
+--                          hash returned flat for dead-lettering
+
+local h = redis.call('HGETALL', KEYS[1])
+if #h == 0 then
+  return {'gone'}
+end
+local o = {}
+for i = 1, #h, 2 do
+  o[h[i]] = h[i + 1]
+end
+if o['tp'] ~= ARGV[1] or o['pt'] ~= ARGV[2] then
+  return {'other'}
+end
+if o['s'] == 'c' then
+  redis.call('DEL', KEYS[1])
+  return {'claimed'}
+end
+if tonumber(o['dl']) > tonumber(ARGV[3]) then
+  return {'later', o['dl']}
+end
+redis.call('DEL', KEYS[1])
+return {'expired', h}

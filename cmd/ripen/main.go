@@ -31,7 +31,7 @@ func newRootCmd() *cobra.Command {
 		SilenceUsage:  true,
 		SilenceErrors: true,
 	}
-	root.AddCommand(newFitCmd())
+	root.AddCommand(newFitCmd(), newSimulateCmd())
 	return root
 }
 

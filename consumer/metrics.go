@@ -1,0 +1,114 @@
+package consumer
+
+import (
+	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/client_golang/prometheus/collectors"
+)
+
+// Metrics are the Prometheus series of `ripen run`. All are created by
+// NewMetrics; counters and gauges with labels are vectors.
+type Metrics struct {
+	// EventsConsumed counts events read from Kafka, by topic.
+	EventsConsumed *prometheus.CounterVec
+	// EventsRejected counts rejected events (and control messages), by
+	// reason (a Reason value).
+	EventsRejected *prometheus.CounterVec
+	// DeadLetterPublished counts messages written to the dead-letter topic.
+	DeadLetterPublished prometheus.Counter
+	// FlushDuration observes the wall time of one batch flush to Redis.
+	FlushDuration prometheus.Histogram
+	// RefitDuration observes the wall time of one experiment's refit.
+	RefitDuration prometheus.Histogram
+	// ConsumerLag is, per topic and partition, the partition's end offset
+	// minus the group's committed offset, in messages.
+	ConsumerLag *prometheus.GaugeVec
+	// AllocationsPublished counts allocation messages written to Kafka.
+	AllocationsPublished prometheus.Counter
+	// Watermark is the event-time watermark as Unix seconds.
+	Watermark prometheus.Gauge
+	// RedisUp is 1 while the last Redis call succeeded, 0 otherwise.
+	RedisUp prometheus.Gauge
+	// Experiments is the number of experiments known (discovered or
+	// configured).
+	Experiments prometheus.Gauge
+}
+
+// knownReasons are the rejection reasons pre-set to zero in EventsRejected
+// so their series exist before the first rejection.
+var knownReasons = []Reason{
+	ReasonMalformedJSON, ReasonLineTooLong, ReasonDuplicateField, ReasonMissingField,
+	ReasonWrongType, ReasonEmptyField, ReasonFieldTooLong, ReasonInvalidText,
+	ReasonBadTimestamp, ReasonAbsurdTimestamp, ReasonDuplicateClick, ReasonUnknownClick,
+	ReasonAttributionMismatch, ReasonConversionBeforeClick, ReasonConversionAfterWindow,
+	ReasonDuplicateConversion, ReasonOrphanExpired, ReasonCapExceeded, ReasonLayoutMismatch,
+	ReasonBadControl,
+}
+
+// NewMetrics creates the metrics and registers them on reg, panicking (as
+// prometheus.MustRegister does) when a name is already registered there. A
+// nil reg creates unregistered metrics, for tests.
+func NewMetrics(reg prometheus.Registerer) *Metrics {
+	m := &Metrics{
+		EventsConsumed: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "ripen_events_consumed_total",
+			Help: "Events read from Kafka, by topic.",
+		}, []string{"topic"}),
+		EventsRejected: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "ripen_events_rejected_total",
+			Help: "Rejected events and control messages, by reason.",
+		}, []string{"reason"}),
+		DeadLetterPublished: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "ripen_deadletter_published_total",
+			Help: "Messages written to the dead-letter topic.",
+		}),
+		FlushDuration: prometheus.NewHistogram(prometheus.HistogramOpts{
+			Name: "ripen_flush_duration_seconds",
+			Help: "Wall time of one batch flush to Redis.",
+			// 1ms to about 16s.
+			Buckets: prometheus.ExponentialBuckets(0.001, 2, 15),
+		}),
+		RefitDuration: prometheus.NewHistogram(prometheus.HistogramOpts{
+			Name: "ripen_refit_duration_seconds",
+			Help: "Wall time of one experiment refit.",
+			// 10ms to about 80s.
+			Buckets: prometheus.ExponentialBuckets(0.01, 2, 14),
+		}),
+		ConsumerLag: prometheus.NewGaugeVec(prometheus.GaugeOpts{
+			Name: "ripen_consumer_lag",
+			Help: "Partition end offset minus the committed offset, in messages.",
+		}, []string{"topic", "partition"}),
+		AllocationsPublished: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "ripen_allocations_published_total",
+			Help: "Allocation messages written to Kafka.",
+		}),
+		Watermark: prometheus.NewGauge(prometheus.GaugeOpts{
+			Name: "ripen_watermark_seconds",
+			Help: "Event-time watermark, Unix seconds.",
+		}),
+		RedisUp: prometheus.NewGauge(prometheus.GaugeOpts{
+			Name: "ripen_redis_up",
+			Help: "1 if the last Redis call succeeded, else 0.",
+		}),
+		Experiments: prometheus.NewGauge(prometheus.GaugeOpts{
+			Name: "ripen_experiments",
+			Help: "Number of known experiments.",
+		}),
+	}
+	for _, r := range knownReasons {
+		m.EventsRejected.WithLabelValues(string(r))
+	}
+	if reg != nil {
+		reg.MustRegister(m.EventsConsumed, m.EventsRejected, m.DeadLetterPublished,
+			m.FlushDuration, m.RefitDuration, m.ConsumerLag, m.AllocationsPublished,
+			m.Watermark, m.RedisUp, m.Experiments)
+	}
+	return m
+}
+
+// NewRegistry returns a registry holding the Go runtime and process
+// collectors, ready for NewMetrics and NewHTTPHandler.
+func NewRegistry() *prometheus.Registry {
+	reg := prometheus.NewRegistry()
+	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
+	return reg
+}

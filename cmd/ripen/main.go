@@ -31,7 +31,7 @@ func newRootCmd() *cobra.Command {
 		SilenceUsage:  true,
 		SilenceErrors: true,
 	}
-	root.AddCommand(newFitCmd(), newSimulateCmd())
+	root.AddCommand(newFitCmd(), newSimulateCmd(), newRunCmd(), newDevbrokerCmd(), newStateCmd(), newInspectCmd())
 	return root
 }
 

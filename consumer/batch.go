@@ -16,6 +16,10 @@ type fetched struct {
 	// hwm is the partition's high watermark (next offset to be written)
 	// when the message was fetched.
 	hwm int64
+	// ts is the event time of a decodable event; hasTS is false for a
+	// message that does not decode (it is dead-lettered, never held back).
+	ts    int64
+	hasTS bool
 }
 
 // origin names a message as "<topic>/<partition>/<offset>".
@@ -66,42 +70,32 @@ func (e *expInfo) seen(tp state.TopicPartition, offset int64) bool {
 	return ok && offset <= last
 }
 
-// armDelta accumulates one arm's share of a flush.
-type armDelta struct {
-	clicks  map[estimator.BucketKey]uint64
-	matured uint64
-	convs   []state.ConversionDelta
+// contrib is one event's contribution to an experiment delta, with the
+// message it comes from, so that a delta can be rebuilt without the events
+// another writer applied meanwhile (see deltaBuilder.build).
+type contrib struct {
+	arm    string
+	tp     state.TopicPartition
+	offset int64
+	origin string
+	// guarded contributions count through a conversion marker, which
+	// keeps them from counting twice; they are never filtered by offset.
+	guarded bool
+	clickTS int64
+	conv    *state.ConversionDelta // nil for a click
 }
 
 // deltaBuilder accumulates the per-experiment deltas of one flush, with
 // every bucket key computed at the flush's watermark.
 type deltaBuilder struct {
-	wm     int64
-	gen    int32
-	exps   map[string]*expInfo
-	arms   map[string]map[string]*armDelta
-	events map[string]int // counted events per experiment
-	// origins lists the origin of every counted event per experiment.
-	origins map[string][]string
+	wm       int64
+	gen      int32
+	exps     map[string]*expInfo
+	contribs map[string][]contrib
 }
 
 func newDeltaBuilder(wm int64, gen int32) *deltaBuilder {
-	return &deltaBuilder{wm: wm, gen: gen, exps: map[string]*expInfo{}, arms: map[string]map[string]*armDelta{}, events: map[string]int{}, origins: map[string][]string{}}
-}
-
-func (b *deltaBuilder) arm(e *expInfo, arm string) *armDelta {
-	b.exps[e.id] = e
-	m := b.arms[e.id]
-	if m == nil {
-		m = map[string]*armDelta{}
-		b.arms[e.id] = m
-	}
-	a := m[arm]
-	if a == nil {
-		a = &armDelta{clicks: map[estimator.BucketKey]uint64{}}
-		m[arm] = a
-	}
-	return a
+	return &deltaBuilder{wm: wm, gen: gen, exps: map[string]*expInfo{}, contribs: map[string][]contrib{}}
 }
 
 // touch makes sure the experiment gets a delta (for its offsets) even if
@@ -110,46 +104,67 @@ func (b *deltaBuilder) touch(e *expInfo) {
 	b.exps[e.id] = e
 }
 
-// click adds one click made at ts, read at origin.
-func (b *deltaBuilder) click(e *expInfo, arm, origin string, ts int64) {
-	a := b.arm(e, arm)
-	key, matured := e.layout.PendingBucket(ts, b.wm)
-	if matured {
-		a.matured++
-	} else {
-		a.clicks[key]++
-	}
-	b.events[e.id]++
-	b.origins[e.id] = append(b.origins[e.id], origin)
+// click adds one click made at ts, read at offset of tp.
+func (b *deltaBuilder) click(e *expInfo, arm string, tp state.TopicPartition, offset, ts int64) {
+	b.touch(e)
+	b.contribs[e.id] = append(b.contribs[e.id], contrib{arm: arm, tp: tp, offset: offset, origin: origin(tp, offset), clickTS: ts})
 }
 
-// conversion adds one conversion, read at origin, of the click clickID made
-// at clickTS, seen at convTS. The caller checked the delay.
-func (b *deltaBuilder) conversion(e *expInfo, arm, clickID, origin string, clickTS, convTS int64) {
-	a := b.arm(e, arm)
-	key, matured := e.layout.PendingBucket(clickTS, b.wm)
+// conversion adds one conversion read at origin of the click clickID made
+// at clickTS, seen at convTS; tp and offset name the message that made it
+// count (the conversion, or the click that claimed it). withClick adds the
+// click too (self-attributed), guarded by the conversion marker. The
+// caller checked the delay.
+func (b *deltaBuilder) conversion(e *expInfo, arm, clickID, org string, tp state.TopicPartition, offset, clickTS, convTS int64, withClick bool) {
+	b.touch(e)
 	d := convTS - clickTS
-	a.convs = append(a.convs, state.ConversionDelta{
-		ClickID: clickID, Origin: origin, Bucket: key, Matured: matured,
-		DelayBin: e.layout.DelayBin(d), DelayMs: d,
+	b.contribs[e.id] = append(b.contribs[e.id], contrib{
+		arm: arm, tp: tp, offset: offset, origin: org, guarded: withClick, clickTS: clickTS,
+		conv: &state.ConversionDelta{ClickID: clickID, Origin: org, DelayBin: e.layout.DelayBin(d), DelayMs: d, WithClick: withClick},
 	})
-	b.events[e.id]++
-	b.origins[e.id] = append(b.origins[e.id], origin)
 }
 
-// deltas returns one delta per touched experiment, sorted by id, covering
-// the batch's ranges minus what each experiment applied before. An
-// experiment for which every range was applied before gets none.
-func (b *deltaBuilder) deltas(bt *batch) []*state.ExperimentDelta {
+// origins lists the origin of every event counted for experiment id.
+func (b *deltaBuilder) origins(id string) []string {
+	var out []string
+	for _, c := range b.contribs[id] {
+		out = append(out, c.origin)
+	}
+	return out
+}
+
+// ids returns the touched experiments, sorted.
+func (b *deltaBuilder) ids() []string {
 	ids := make([]string, 0, len(b.exps))
 	for id := range b.exps {
 		ids = append(ids, id)
 	}
 	slices.Sort(ids)
+	return ids
+}
+
+// deltas returns one delta per touched experiment, sorted by id (see
+// build); experiments with nothing to apply get none.
+func (b *deltaBuilder) deltas(bt *batch) []*state.ExperimentDelta {
 	var out []*state.ExperimentDelta
-	for _, id := range ids {
-		e := b.exps[id]
-		d := &state.ExperimentDelta{Experiment: id, Layout: e.layout, Watermark: b.wm, Generation: b.gen, Arms: map[string]*state.ArmDelta{}}
+	for _, id := range b.ids() {
+		if d := b.build(id, bt); d != nil {
+			out = append(out, d)
+		}
+	}
+	return out
+}
+
+// build returns experiment id's delta covering the batch's ranges minus
+// what the experiment applied before (e.applied), with the contributions
+// of the messages not applied before; nil if every range was applied
+// before. With a nil batch the delta covers no offsets and holds only the
+// guarded contributions (a sweep's self-attributed conversions); nil if
+// there are none.
+func (b *deltaBuilder) build(id string, bt *batch) *state.ExperimentDelta {
+	e := b.exps[id]
+	d := &state.ExperimentDelta{Experiment: id, Layout: e.layout, Watermark: b.wm, Generation: b.gen, Arms: map[string]*state.ArmDelta{}}
+	if bt != nil {
 		for _, tp := range bt.order {
 			r := *bt.ranges[tp]
 			if last, ok := e.applied[tp]; ok {
@@ -161,24 +176,54 @@ func (b *deltaBuilder) deltas(bt *batch) []*state.ExperimentDelta {
 			d.Ranges = append(d.Ranges, r)
 		}
 		if len(d.Ranges) == 0 {
+			return nil
+		}
+	}
+	clicks := map[string]map[estimator.BucketKey]uint64{}
+	n := 0
+	for _, c := range b.contribs[id] {
+		if bt == nil && !c.guarded {
 			continue
 		}
-		for name, a := range b.arms[id] {
-			ad := &state.ArmDelta{MaturedClicks: a.matured, Conversions: a.convs}
-			for k, n := range a.clicks {
-				ad.Clicks = append(ad.Clicks, estimator.Bucket{BucketKey: k, BucketCounts: estimator.BucketCounts{Clicks: n}})
-			}
-			slices.SortFunc(ad.Clicks, func(x, y estimator.Bucket) int {
-				if x.Level != y.Level {
-					return int(x.Level) - int(y.Level)
-				}
-				return cmpInt64(x.Index, y.Index)
-			})
-			d.Arms[name] = ad
+		if !c.guarded && e.seen(c.tp, c.offset) {
+			continue
 		}
-		out = append(out, d)
+		a := d.Arms[c.arm]
+		if a == nil {
+			a = &state.ArmDelta{}
+			d.Arms[c.arm] = a
+			clicks[c.arm] = map[estimator.BucketKey]uint64{}
+		}
+		key, matured := e.layout.PendingBucket(c.clickTS, b.wm)
+		n++
+		if c.conv == nil {
+			if matured {
+				a.MaturedClicks++
+			} else {
+				clicks[c.arm][key]++
+			}
+			continue
+		}
+		cv := *c.conv
+		cv.Bucket, cv.Matured = key, matured
+		a.Conversions = append(a.Conversions, cv)
 	}
-	return out
+	if bt == nil && n == 0 {
+		return nil
+	}
+	for name, m := range clicks {
+		a := d.Arms[name]
+		for k, cnt := range m {
+			a.Clicks = append(a.Clicks, estimator.Bucket{BucketKey: k, BucketCounts: estimator.BucketCounts{Clicks: cnt}})
+		}
+		slices.SortFunc(a.Clicks, func(x, y estimator.Bucket) int {
+			if x.Level != y.Level {
+				return int(x.Level) - int(y.Level)
+			}
+			return cmpInt64(x.Index, y.Index)
+		})
+	}
+	return d
 }
 
 func cmpInt64(a, b int64) int {

@@ -146,6 +146,33 @@ type PipelineConfig struct {
 	// OrphanTTL is how long, in event time, a conversion waits for its
 	// click before it is dead-lettered. Default: 1h.
 	OrphanTTL time.Duration `yaml:"orphan_ttl"`
+	// IdleTimeout is how long (wall clock) a partition that is caught up
+	// with its log end may go without a new event before it stops holding
+	// the group's watermark back, until it gets an event again. It only
+	// keeps a live consumer moving when some partitions are quiet; a
+	// partition that lags is never idle, so replays are unaffected.
+	// Default: 1m.
+	IdleTimeout time.Duration `yaml:"idle_timeout"`
+	// HoldbackCap bounds the events an instance has read but not applied
+	// (in flight or held back until the next refit tick, see Service):
+	// each owned partition's reader pauses while its share (the cap over
+	// the partitions owned) is out, which never stalls the group because
+	// such a partition has applied everything up to the boundary. Should
+	// the cap be exceeded all the same, every held event is applied at
+	// once (bounded memory beats determinism; the refit of that tick may
+	// then see events after it) and a warning is logged. Default: 200000.
+	HoldbackCap int `yaml:"holdback_cap"`
+	// ResetFencing raises this consumer group's writer epoch above every
+	// generation recorded in Redis when the service starts (the
+	// `ripen run --reset-fencing` flag; never read from a file or the
+	// environment, since it is a one-off repair). Use it once, after the
+	// Kafka consumer group was deleted or recreated: its generation ids
+	// restarted, so every write is refused as coming from an older
+	// generation. Risk: a consumer of the old group that is still running,
+	// or another deployment writing the same Redis prefix, is no longer
+	// fenced off and its writes could count events twice; stop every other
+	// writer first. Default: false.
+	ResetFencing bool `yaml:"-"`
 }
 
 // ExperimentConfig is the per-experiment model and policy setup. Pointer
@@ -252,6 +279,8 @@ const (
 	DefaultPublishThreshold       = 0.01
 	DefaultPublishEvery           = time.Hour
 	DefaultOrphanTTL              = time.Hour
+	DefaultIdleTimeout            = time.Minute
+	DefaultHoldbackCap            = 200000
 	DefaultMaxExperiments         = 1000
 	DefaultMaxArms                = 32
 	DefaultMaxOrphansPerPartition = 100000
@@ -306,6 +335,8 @@ func (c Config) WithDefaults() Config {
 	setDefault(&p.PublishThreshold, DefaultPublishThreshold)
 	setDefault(&p.PublishEvery, DefaultPublishEvery)
 	setDefault(&p.OrphanTTL, DefaultOrphanTTL)
+	setDefault(&p.IdleTimeout, DefaultIdleTimeout)
+	setDefault(&p.HoldbackCap, DefaultHoldbackCap)
 	setDefault(&c.Limits.MaxExperiments, DefaultMaxExperiments)
 	setDefault(&c.Limits.MaxArms, DefaultMaxArms)
 	setDefault(&c.Limits.MaxOrphansPerPartition, DefaultMaxOrphansPerPartition)
@@ -489,6 +520,10 @@ func (c Config) Validate() error {
 		v.add("pipeline.publish_every", "%v is shorter than refit_every %v; publication happens on refit ticks", p.PublishEvery, p.RefitEvery)
 	}
 	v.positive("pipeline.orphan_ttl", p.OrphanTTL)
+	v.positive("pipeline.idle_timeout", p.IdleTimeout)
+	if p.HoldbackCap < 1 {
+		v.add("pipeline.holdback_cap", "%d must be at least 1", p.HoldbackCap)
+	}
 
 	l := c.Limits
 	for _, f := range []struct {

@@ -23,6 +23,8 @@ const (
 	readerMaxWait     = 200 * time.Millisecond
 	readerMaxBytes    = 10 << 20
 	fetchBufferFactor = 2 // channel capacity, in units of FlushEvents
+	// barrierInterval is the step period while events are held back.
+	barrierInterval = 100 * time.Millisecond
 )
 
 // consume joins the consumer group over the click and conversion topics
@@ -90,15 +92,7 @@ func (s *Service) runGeneration(ctx context.Context, dialer *kafka.Dialer, gen *
 			assigned = append(assigned, state.TopicPartition{Topic: topic, Partition: p.ID})
 		}
 	}
-	slices.SortFunc(assigned, func(a, b state.TopicPartition) int {
-		if a.Topic != b.Topic {
-			if a.Topic < b.Topic {
-				return -1
-			}
-			return 1
-		}
-		return a.Partition - b.Partition
-	})
+	slices.SortFunc(assigned, compareTP)
 	s.log.Info("generation assigned", zap.Int32("generation", gen.ID), zap.Int("partitions", len(assigned)))
 
 	// Resume offsets from Redis (the authority); Kafka's committed offsets
@@ -120,33 +114,61 @@ func (s *Service) runGeneration(ctx context.Context, dialer *kafka.Dialer, gen *
 		start[tp] = off
 	}
 
-	s.mu.Lock()
-	wm := newWatermarks(cfg.Pipeline.Lateness.Milliseconds(), assigned)
-	wm.wm = s.watermark
-	s.mu.Unlock()
-	// Partitions with nothing to read must not hold the watermark back.
-	for _, tp := range assigned {
-		var end int64
+	// Every partition of both input topics (the group's, not just ours):
+	// the watermark and the refit barrier are computed over all of them.
+	meta := partitionMeta{empty: map[state.TopicPartition]bool{}, clickTopic: cfg.Kafka.ClickTopic}
+	ends := map[state.TopicPartition][2]int64{}
+	for _, topic := range []string{cfg.Kafka.ClickTopic, cfg.Kafka.ConversionTopic} {
+		var parts []kafka.Partition
 		err := s.retry(ctx, "kafka metadata", func(ctx context.Context) error {
-			conn, err := dialer.DialLeader(ctx, "tcp", cfg.Kafka.Brokers[0], tp.Topic, tp.Partition)
-			if err != nil {
-				return err
-			}
-			defer conn.Close()
-			end, err = conn.ReadLastOffset()
+			var err error
+			parts, err = dialer.LookupPartitions(ctx, "tcp", cfg.Kafka.Brokers[0], topic)
 			return err
 		})
 		if err != nil {
-			return fmt.Errorf("generation %d: end offset of %s: %w", gen.ID, tp, err)
+			return fmt.Errorf("generation %d: partitions of %s: %w", gen.ID, topic, err)
 		}
-		if off := start[tp]; off >= end || (off == kafka.FirstOffset && end == 0) {
-			wm.idle(tp)
+		for _, p := range parts {
+			tp := state.TopicPartition{Topic: topic, Partition: p.ID}
+			var first, last int64
+			err := s.retry(ctx, "kafka metadata", func(ctx context.Context) error {
+				conn, err := dialer.DialLeader(ctx, "tcp", cfg.Kafka.Brokers[0], tp.Topic, tp.Partition)
+				if err != nil {
+					return err
+				}
+				defer conn.Close()
+				first, last, err = conn.ReadOffsets()
+				return err
+			})
+			if err != nil {
+				return fmt.Errorf("generation %d: offsets of %s: %w", gen.ID, tp, err)
+			}
+			meta.all = append(meta.all, tp)
+			meta.empty[tp] = first >= last
+			ends[tp] = [2]int64{first, last}
+			if topic == cfg.Kafka.ClickTopic {
+				meta.clickParts = max(meta.clickParts, p.ID+1)
+			}
 		}
 	}
+	slices.SortFunc(meta.all, compareTP)
+
+	base, err := s.fencingBase(ctx, cfg, gen.ID)
+	if err != nil {
+		return fmt.Errorf("generation %d: %w", gen.ID, err)
+	}
+	now := time.Now()
 	g := &genState{
-		s: s, id: gen.ID, assigned: assigned, wm: wm,
+		s: s, id: base + gen.ID, assigned: assigned,
 		exps: map[string]*expInfo{}, capped: map[string]bool{},
-		commit: gen.CommitOffsets,
+		commit: gen.CommitOffsets, meta: meta, own: map[state.TopicPartition]*ownedPart{},
+		times: unknownTimes, swept: map[state.TopicPartition]int64{},
+	}
+	for _, tp := range assigned {
+		// A partition with nothing to read is caught up from the start.
+		e := ends[tp]
+		off := start[tp]
+		g.own[tp] = &ownedPart{seen: noTime, lastRead: now, caughtUp: off >= e[1] || (off < 0 && e[0] >= e[1]), gate: newReadGate(partitionHoldCap(cfg, len(assigned)))}
 	}
 
 	done := make(chan error, 1)
@@ -156,8 +178,48 @@ func (s *Service) runGeneration(ctx context.Context, dialer *kafka.Dialer, gen *
 	return <-done
 }
 
-// pipeline starts one reader per assigned partition and batches what they
-// fetch, flushing every FlushEvents events or FlushInterval.
+// compareTP orders partitions by topic, then number.
+func compareTP(a, b state.TopicPartition) int {
+	if a.Topic != b.Topic {
+		if a.Topic < b.Topic {
+			return -1
+		}
+		return 1
+	}
+	return a.Partition - b.Partition
+}
+
+// fencingBase returns the group's fencing base (added to Kafka generation
+// ids to form the writer epoch), raising it first above every stored
+// generation when pipeline.reset_fencing asks for it (once per run).
+func (s *Service) fencingBase(ctx context.Context, cfg Config, genID int32) (int32, error) {
+	s.mu.Lock()
+	reset := cfg.Pipeline.ResetFencing && !s.fenceReset
+	s.mu.Unlock()
+	var base int32
+	err := s.retry(ctx, "fencing base", func(ctx context.Context) error {
+		var err error
+		if reset {
+			base, err = s.store.ResetFencing(ctx, cfg.Kafka.Group, genID)
+		} else {
+			base, err = s.store.FencingBase(ctx, cfg.Kafka.Group)
+		}
+		return err
+	})
+	if err != nil {
+		return 0, err
+	}
+	if reset {
+		s.mu.Lock()
+		s.fenceReset = true
+		s.mu.Unlock()
+		s.log.Warn("fencing reset: writer epochs now start above every stored generation", zap.String("group", cfg.Kafka.Group), zap.Int32("base", base))
+	}
+	return base, nil
+}
+
+// pipeline starts one reader per assigned partition and steps (see
+// genState.step) every FlushEvents messages read or FlushInterval.
 func (s *Service) pipeline(ctx, genCtx context.Context, gen *kafka.Generation, dialer *kafka.Dialer, g *genState, start map[state.TopicPartition]int64) error {
 	cfg := s.config()
 	fetchCtx, stopFetch := context.WithCancel(genCtx)
@@ -167,7 +229,7 @@ func (s *Service) pipeline(ctx, genCtx context.Context, gen *kafka.Generation, d
 		readers.Add(1)
 		gen.Start(func(context.Context) {
 			defer readers.Done()
-			s.readPartition(fetchCtx, dialer, cfg.Kafka.Brokers, tp, start[tp], in)
+			s.readPartition(fetchCtx, dialer, cfg.Kafka.Brokers, tp, start[tp], in, g.own[tp].gate)
 		})
 	}
 	defer func() {
@@ -175,7 +237,7 @@ func (s *Service) pipeline(ctx, genCtx context.Context, gen *kafka.Generation, d
 		readers.Wait()
 	}()
 
-	// A flush in progress is finished even when the generation ends or ctx
+	// A step in progress is finished even when the generation ends or ctx
 	// is cancelled meanwhile (an aborted flush leaves half-done join work
 	// and resume offsets ahead of the Kafka commit); after a cancellation
 	// its retries are bounded by ShutdownTimeout. A flush that outlives the
@@ -197,40 +259,46 @@ func (s *Service) pipeline(ctx, genCtx context.Context, gen *kafka.Generation, d
 		}
 	}()
 
-	b := newBatch()
+	pending := 0
 	timer := time.NewTimer(cfg.Pipeline.FlushInterval)
 	defer timer.Stop()
-	flush := func(fctx context.Context) error {
-		if b.len() == 0 {
-			return nil
-		}
-		_, err := g.flush(fctx, b)
-		if err != nil {
-			return err
-		}
-		b = newBatch()
-		return s.maybeRefit(fctx, g.wm.current())
+	step := func(sctx context.Context) error {
+		pending = 0
+		return g.step(sctx)
+	}
+	// final steps once more after fetching stopped (held events stay
+	// unapplied; their offsets are read again by the next owner).
+	final := func() error {
+		stopFetch()
+		sctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), cfg.ShutdownTimeout)
+		defer cancel()
+		return step(sctx)
 	}
 	for {
 		select {
 		case m := <-in:
-			b.add(m)
-			if b.len() >= cfg.Pipeline.FlushEvents {
-				if err := flush(runCtx); err != nil {
+			g.receive(m, cfg, time.Now())
+			pending++
+			if pending >= cfg.Pipeline.FlushEvents {
+				if err := step(runCtx); err != nil {
 					return s.endGeneration(ctx, err)
 				}
 			}
 		case <-timer.C:
-			if err := flush(runCtx); err != nil {
+			if err := step(runCtx); err != nil {
 				return s.endGeneration(ctx, err)
 			}
-			timer.Reset(cfg.Pipeline.FlushInterval)
+			// While events wait for the group's refit barrier, step
+			// more often: each tick needs a few rounds through Redis.
+			next := cfg.Pipeline.FlushInterval
+			if g.heldTotal > 0 {
+				next = min(next, barrierInterval)
+			}
+			timer.Reset(next)
 		case <-ctx.Done():
-			// Graceful stop: stop fetching, flush what was read, commit.
-			stopFetch()
-			sctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), cfg.ShutdownTimeout)
-			defer cancel()
-			if err := flush(sctx); err != nil {
+			// Graceful stop: stop fetching, flush what may be applied,
+			// commit.
+			if err := final(); err != nil {
 				s.log.Error("final flush on shutdown", zap.Error(err))
 				if errors.Is(err, errCrash) {
 					return err
@@ -240,15 +308,94 @@ func (s *Service) pipeline(ctx, genCtx context.Context, gen *kafka.Generation, d
 		case <-genCtx.Done():
 			// Rebalance: flush what was read before giving the
 			// partitions up; the group waits for this.
-			stopFetch()
-			sctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), cfg.ShutdownTimeout)
-			defer cancel()
-			if err := flush(sctx); err != nil {
+			if err := final(); err != nil {
 				return s.endGeneration(ctx, err)
 			}
 			return nil
 		}
 	}
+}
+
+// step is one round of the pipeline: read the group's progress, apply the
+// held events the boundary lets through, sweep due orphans, report this
+// instance's progress, and run the refits this instance owns that the
+// group is ready for.
+func (g *genState) step(ctx context.Context) error {
+	s := g.s
+	cfg := s.config()
+	if s.hooks.beforeStep != nil {
+		s.hooks.beforeStep()
+	}
+	if err := g.readTimes(ctx); err != nil {
+		return err
+	}
+	b, overflow := g.release(cfg)
+	if overflow {
+		s.mu.Lock()
+		s.overflows++
+		s.mu.Unlock()
+		if s.metrics != nil {
+			s.metrics.HoldbackOverflows.Inc()
+		}
+		s.log.Warn("hold-back cap exceeded: applying held events early; the next refit may see events after its tick", zap.Int("held", b.len()), zap.Int("cap", cfg.Pipeline.HoldbackCap))
+	}
+	if _, err := g.flush(ctx, b); err != nil {
+		return err
+	}
+	if err := g.sweep(ctx); err != nil {
+		return err
+	}
+	for _, topic := range []string{cfg.Kafka.ClickTopic, cfg.Kafka.ConversionTopic} {
+		parts := g.progress(cfg, time.Now())[topic]
+		if err := s.retry(ctx, "report progress", func(ctx context.Context) error {
+			return s.store.ReportProgress(ctx, topic, g.id, parts)
+		}); err != nil {
+			return err
+		}
+	}
+	prog, err := g.readTimesProgress(ctx)
+	if err != nil {
+		return err
+	}
+	return g.refitOwned(ctx, prog)
+}
+
+// readTimes refreshes the group times from Redis.
+func (g *genState) readTimes(ctx context.Context) error {
+	_, err := g.readTimesProgress(ctx)
+	return err
+}
+
+// readTimesProgress refreshes the group times from Redis and returns the
+// progress records read.
+func (g *genState) readTimesProgress(ctx context.Context) (map[string]map[int]state.PartitionProgress, error) {
+	s := g.s
+	cfg := s.config()
+	var prog map[string]map[int]state.PartitionProgress
+	if err := s.retry(ctx, "progress", func(ctx context.Context) error {
+		var err error
+		prog, err = s.store.Progress(ctx, cfg.Kafka.ClickTopic, cfg.Kafka.ConversionTopic)
+		return err
+	}); err != nil {
+		return nil, err
+	}
+	g.times = computeGroupTimes(g.meta, prog, cfg.Pipeline.Lateness.Milliseconds(), cfg.Pipeline.RefitEvery.Milliseconds(), g.times.watermark)
+	for _, tp := range g.assigned {
+		if _, ok := g.swept[tp]; !ok && tp.Topic == cfg.Kafka.ConversionTopic {
+			swept := noTime
+			if rec, ok := prog[tp.Topic][tp.Partition]; ok {
+				swept = rec.Swept
+			}
+			g.swept[tp] = swept
+		}
+	}
+	if g.times.watermark != noTime {
+		s.setWatermark(g.times.watermark)
+	}
+	if s.hooks.onTimes != nil {
+		s.hooks.onTimes(g.times)
+	}
+	return prog, nil
 }
 
 // endGeneration classifies a flush error: a crash hook, a fence or a
@@ -267,8 +414,9 @@ func (s *Service) endGeneration(ctx context.Context, err error) error {
 	return err
 }
 
-// readPartition fetches one partition from offset into out until ctx ends.
-func (s *Service) readPartition(ctx context.Context, dialer *kafka.Dialer, brokers []string, tp state.TopicPartition, offset int64, out chan<- fetched) {
+// readPartition fetches one partition from offset into out until ctx ends,
+// waiting while gate is closed.
+func (s *Service) readPartition(ctx context.Context, dialer *kafka.Dialer, brokers []string, tp state.TopicPartition, offset int64, out chan<- fetched, gate *readGate) {
 	r := kafka.NewReader(kafka.ReaderConfig{
 		Brokers:   brokers,
 		Topic:     tp.Topic,
@@ -287,6 +435,9 @@ func (s *Service) readPartition(ctx context.Context, dialer *kafka.Dialer, broke
 		return
 	}
 	for {
+		if err := gate.wait(ctx); err != nil {
+			return
+		}
 		m, err := r.FetchMessage(ctx)
 		if err != nil {
 			if ctx.Err() == nil {
@@ -294,6 +445,7 @@ func (s *Service) readPartition(ctx context.Context, dialer *kafka.Dialer, broke
 			}
 			return
 		}
+		gate.add(1)
 		select {
 		case out <- fetched{tp: tp, offset: m.Offset, value: m.Value, hwm: m.HighWaterMark}:
 		case <-ctx.Done():

@@ -31,6 +31,10 @@ type Metrics struct {
 	// Experiments is the number of experiments known (discovered or
 	// configured).
 	Experiments prometheus.Gauge
+	// HoldbackOverflows counts flushes that applied held-back events early
+	// because pipeline.holdback_cap was reached; each may make a refit see
+	// events after its tick, so replays may differ.
+	HoldbackOverflows prometheus.Counter
 }
 
 // knownReasons are the rejection reasons pre-set to zero in EventsRejected
@@ -93,6 +97,10 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 			Name: "ripen_experiments",
 			Help: "Number of known experiments.",
 		}),
+		HoldbackOverflows: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "ripen_holdback_overflows_total",
+			Help: "Flushes that applied held-back events early because the hold-back cap was reached.",
+		}),
 	}
 	for _, r := range knownReasons {
 		m.EventsRejected.WithLabelValues(string(r))
@@ -100,7 +108,7 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 	if reg != nil {
 		reg.MustRegister(m.EventsConsumed, m.EventsRejected, m.DeadLetterPublished,
 			m.FlushDuration, m.RefitDuration, m.ConsumerLag, m.AllocationsPublished,
-			m.Watermark, m.RedisUp, m.Experiments)
+			m.Watermark, m.RedisUp, m.Experiments, m.HoldbackOverflows)
 	}
 	return m
 }

@@ -5,8 +5,10 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"slices"
 	"strconv"
 	"strings"
+	"sync"
 	"time"
 
 	"go.uber.org/zap"
@@ -18,16 +20,107 @@ import (
 // errFenced ends a generation whose partitions have a newer owner.
 var errFenced = errors.New("partition taken over by a newer consumer generation")
 
+// overlapAttempts bounds the reload-and-retry rounds of one experiment's
+// delta refused as overlapping (see genState.apply).
+const overlapAttempts = 4
+
 // genState is the pipeline state of one consumer-group generation: what it
-// owns, where each partition resumes, and what it knows of experiments.
+// owns, where each partition resumes, what it knows of experiments and of
+// the group's event-time progress, and the events it holds back.
 type genState struct {
-	s        *Service
+	s *Service
+	// id is the writer epoch: the Kafka generation id plus the fencing
+	// base of the group (see Service.fencingBase).
 	id       int32
 	assigned []state.TopicPartition
-	wm       *watermarks
 	exps     map[string]*expInfo
 	capped   map[string]bool // experiments refused by limits.max_experiments
 	commit   func(map[string]map[int]int64) error
+
+	meta  partitionMeta
+	own   map[state.TopicPartition]*ownedPart
+	times groupTimes
+	// heldTotal counts the held messages of every owned partition.
+	heldTotal int
+	// swept is the last tick through which each owned conversion
+	// partition's due orphans were settled (from its record at first).
+	swept map[state.TopicPartition]int64
+}
+
+// ownedPart is what the generation tracks of one assigned partition.
+type ownedPart struct {
+	// held are messages read but not applied yet, in offset order: every
+	// message from the first one after the hold-back boundary on.
+	held []fetched
+	// seen is the latest event time read, noTime if none.
+	seen int64
+	// caughtUp is true when the last message read was the log's last (or
+	// there was nothing to read).
+	caughtUp bool
+	// lastRead is the wall time of the last message read (liveness only).
+	lastRead time.Time
+	// gate pauses the partition's reader while its share of
+	// pipeline.holdback_cap is read but not applied. A partition with
+	// that many held events has applied everything up to the boundary,
+	// so pausing it never holds the group's barrier back.
+	gate *readGate
+}
+
+// readGate bounds the messages of one partition that are read but not
+// applied (in the fetch channel or held back): its reader waits while
+// limit of them are out. The nil *readGate never waits.
+type readGate struct {
+	mu    sync.Mutex
+	limit int
+	count int
+	open  chan struct{} // closed while count < limit
+	shut  bool
+}
+
+func newReadGate(limit int) *readGate {
+	ch := make(chan struct{})
+	close(ch)
+	return &readGate{limit: max(1, limit), open: ch}
+}
+
+// wait returns once fewer than limit messages are out, or ctx's error.
+func (g *readGate) wait(ctx context.Context) error {
+	if g == nil {
+		return nil
+	}
+	g.mu.Lock()
+	ch := g.open
+	g.mu.Unlock()
+	select {
+	case <-ch:
+		return nil
+	case <-ctx.Done():
+		return ctx.Err()
+	}
+}
+
+// add counts n more messages out (negative when they are applied).
+func (g *readGate) add(n int) {
+	if g == nil {
+		return
+	}
+	g.mu.Lock()
+	defer g.mu.Unlock()
+	g.count += n
+	switch {
+	case g.count < g.limit && g.shut:
+		close(g.open)
+		g.shut = false
+	case g.count >= g.limit && !g.shut:
+		g.open = make(chan struct{})
+		g.shut = true
+	}
+}
+
+// partitionHoldCap is the share of pipeline.holdback_cap one partition may
+// have read but not applied before its reader pauses.
+func partitionHoldCap(cfg Config, partitions int) int {
+	return max(1, cfg.Pipeline.HoldbackCap/max(1, partitions))
 }
 
 // clickEvent and convEvent are decoded events with where they were read.
@@ -46,6 +139,92 @@ type flushResult struct {
 	events, deadLetters, deltas int
 }
 
+// receive records a message read from an owned partition: it is held
+// until release lets it through.
+func (g *genState) receive(m fetched, cfg Config, now time.Time) {
+	switch m.tp.Topic {
+	case cfg.Kafka.ClickTopic:
+		if c, err := DecodeClick(m.value); err == nil {
+			m.ts, m.hasTS = c.TS, true
+		}
+	case cfg.Kafka.ConversionTopic:
+		if v, err := DecodeConversion(m.value); err == nil {
+			m.ts, m.hasTS = v.TS, true
+		}
+	}
+	p := g.own[m.tp]
+	if p == nil {
+		p = &ownedPart{seen: noTime}
+		g.own[m.tp] = p
+	}
+	p.held = append(p.held, m)
+	g.heldTotal++
+	if m.hasTS {
+		p.seen = max(p.seen, m.ts)
+	}
+	p.caughtUp = m.offset+1 >= m.hwm
+	p.lastRead = now
+}
+
+// release takes from every owned partition the longest run of held
+// messages, in offset order, whose event times are at or before the
+// hold-back boundary (undecodable messages pass), and returns them as a
+// batch. Holding back by prefix keeps each partition's applied offsets
+// contiguous and makes what a refit sees a function of the partition logs
+// alone. While the boundary is unknown everything is held. A partition
+// holding its share of pipeline.holdback_cap has its reader paused until
+// it holds less; if more than the cap is held all the same, everything is
+// released (overflow reports that), trading determinism for bounded
+// memory.
+func (g *genState) release(cfg Config) (b *batch, overflow bool) {
+	b = newBatch()
+	overflow = g.heldTotal > cfg.Pipeline.HoldbackCap
+
+	bound := g.times.boundary
+	for _, tp := range g.assigned {
+		p := g.own[tp]
+		if p == nil {
+			continue
+		}
+		n := 0
+		for n < len(p.held) {
+			m := p.held[n]
+			if !overflow && m.hasTS && (bound == noTime || m.ts > bound) {
+				break
+			}
+			n++
+		}
+		for _, m := range p.held[:n] {
+			b.add(m)
+		}
+		p.held = slices.Delete(p.held, 0, n)
+		g.heldTotal -= n
+		p.gate.add(-n)
+	}
+	return b, overflow
+}
+
+// progress returns what to report for every owned partition after a step.
+func (g *genState) progress(cfg Config, now time.Time) map[string][]state.PartitionProgress {
+	out := map[string][]state.PartitionProgress{}
+	for _, tp := range g.assigned {
+		p := g.own[tp]
+		idle := p.caughtUp && now.Sub(p.lastRead) >= cfg.Pipeline.IdleTimeout
+		first := noTime
+		if len(p.held) > 0 && p.held[0].hasTS {
+			first = p.held[0].ts
+		}
+		swept, ok := g.swept[tp]
+		if !ok {
+			swept = noTime
+		}
+		out[tp.Topic] = append(out[tp.Topic], state.PartitionProgress{
+			Partition: tp.Partition, Seen: p.seen, Applied: appliedThrough(g.times, idle, first, p.seen), Idle: idle, Swept: swept,
+		})
+	}
+	return out
+}
+
 // flush turns one batch into per-experiment deltas, applies them with the
 // offsets they cover, writes the batch's dead letters, records the resume
 // offsets and commits them to Kafka, in that order. Redis failures are
@@ -61,22 +240,18 @@ func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 	raw := map[string][]byte{} // original bytes by origin, for dead letters
 	var dls []DeadLetter
 	refuse := func(org string, rej *RejectError) {
-		tp, off, err := parseOrigin(org)
-		if err != nil {
-			s.log.Error("dead letter with unparsable origin", zap.String("origin", org), zap.Error(err))
-		}
-		dls = append(dls, newDeadLetter(tp.Topic, tp.Partition, off, raw[org], rej))
+		dls = append(dls, s.deadLetter(org, raw[org], rej))
 	}
 
 	var clicks []clickEvent
 	var convs []convEvent
+	fallback := int64(math.MaxInt64)
 	for _, m := range b.msgs {
 		org := origin(m.tp, m.offset)
 		raw[org] = m.value
 		if s.metrics != nil {
 			s.metrics.EventsConsumed.WithLabelValues(m.tp.Topic).Inc()
 		}
-		caught := m.offset+1 >= m.hwm
 		var rej *RejectError
 		switch m.tp.Topic {
 		case cfg.Kafka.ClickTopic:
@@ -87,7 +262,7 @@ func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 			if rej = checkStorable(c.Experiment); rej != nil {
 				break
 			}
-			g.wm.observe(m.tp, c.TS, caught)
+			fallback = min(fallback, c.TS)
 			clicks = append(clicks, clickEvent{m, c})
 		case cfg.Kafka.ConversionTopic:
 			v, err := DecodeConversion(m.value)
@@ -99,7 +274,7 @@ func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 					break
 				}
 			}
-			g.wm.observe(m.tp, v.TS, caught)
+			fallback = min(fallback, v.TS)
 			convs = append(convs, convEvent{m, v})
 		default:
 			rej = reject(ReasonMalformedJSON, "message from unexpected topic %q", m.tp.Topic)
@@ -107,30 +282,17 @@ func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 		if rej != nil {
 			refuse(org, rej)
 		}
-		g.wm.progress(m.tp, caught)
 	}
-	wm := g.wm.advance()
-	keyWm := wm // the watermark the bucket keys are computed at
-	if wm != noTime {
-		s.setWatermark(wm)
-	} else {
-		// While some partition has not delivered yet the watermark is
-		// unknown; keys computed at an earlier time are merely finer than
-		// canonical, and reading re-keys them.
-		keyWm = int64(math.MaxInt64)
-		for _, ce := range clicks {
-			keyWm = min(keyWm, ce.c.TS)
-		}
-		for _, cv := range convs {
-			keyWm = min(keyWm, cv.v.TS)
-		}
-		keyWm -= cfg.Pipeline.Lateness.Milliseconds()
-	}
-	db := newDeltaBuilder(keyWm, g.id)
+	// While the watermark is unknown (some partition has not reported),
+	// keys are computed at the batch's earliest time minus the lateness;
+	// keys computed early are merely finer than canonical, and reading
+	// re-keys them.
+	db := newDeltaBuilder(g.times.keyWatermark(fallback-cfg.Pipeline.Lateness.Milliseconds()), g.id)
 
-	// Clicks: index them, taking the conversions that waited for them.
+	// Clicks: index them (once per click id), taking the conversions that
+	// waited for them.
 	var records []state.ClickRecord
-	byID := map[string]clickEvent{}
+	var indexed []clickEvent
 	for _, ce := range clicks {
 		e, rej, err := g.experiment(ctx, cfg, ce.c.Experiment, ce.c.Arm)
 		if err != nil {
@@ -143,36 +305,42 @@ func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 		if e.seen(ce.m.tp, ce.m.offset) {
 			continue
 		}
-		db.click(e, ce.c.Arm, origin(ce.m.tp, ce.m.offset), ce.c.TS)
-		records = append(records, state.ClickRecord{ClickID: ce.c.ClickID, Experiment: ce.c.Experiment, Arm: ce.c.Arm, TS: ce.c.TS, Window: e.layout.Window})
-		byID[ce.c.ClickID] = ce
+		records = append(records, state.ClickRecord{ClickID: ce.c.ClickID, Experiment: ce.c.Experiment, Arm: ce.c.Arm, TS: ce.c.TS, Window: e.layout.Window, Origin: origin(ce.m.tp, ce.m.offset)})
+		indexed = append(indexed, ce)
 	}
-	var claimed []state.Orphan
+	var put []state.ClickResult
 	if err := s.retry(ctx, "put clicks", func(ctx context.Context) error {
 		var err error
-		claimed, err = s.store.PutClicks(ctx, records)
+		put, err = s.store.IndexClicks(ctx, records)
 		return err
 	}); err != nil {
 		return res, err
 	}
-	for _, o := range claimed {
-		raw[o.Origin] = o.Raw
-		ce, ok := byID[o.ClickID]
-		if !ok {
+	for i, r := range put {
+		ce := indexed[i]
+		org := origin(ce.m.tp, ce.m.offset)
+		e := g.exps[ce.c.Experiment]
+		if r.Status == state.ClickDuplicate {
+			refuse(org, reject(ReasonDuplicateClick, "click_id %q already seen (%s)", ce.c.ClickID, r.Existing.Origin))
 			continue
 		}
+		db.click(e, ce.c.Arm, ce.m.tp, ce.m.offset, ce.c.TS)
+		o := r.Orphan
+		if o == nil {
+			continue
+		}
+		raw[o.Origin] = o.Raw
 		v, err := DecodeConversion(o.Raw)
 		var rej *RejectError
 		if errors.As(err, &rej) {
 			refuse(o.Origin, rej)
 			continue
 		}
-		e := g.exps[ce.c.Experiment]
 		if rej := checkJoin(v, ce.c.Experiment, ce.c.Arm, ce.c.TS, e.windowMs); rej != nil {
 			refuse(o.Origin, rej)
 			continue
 		}
-		db.conversion(e, ce.c.Arm, o.ClickID, o.Origin, ce.c.TS, v.TS)
+		db.conversion(e, ce.c.Arm, o.ClickID, o.Origin, ce.m.tp, ce.m.offset, ce.c.TS, v.TS, false)
 	}
 
 	// Conversions: join to indexed clicks or park until the click comes.
@@ -212,7 +380,7 @@ func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 				refuse(org, rej)
 				continue
 			}
-			db.conversion(e, r.Click.Arm, cv.v.ClickID, org, r.Click.TS, cv.v.TS)
+			db.conversion(e, r.Click.Arm, cv.v.ClickID, org, cv.m.tp, cv.m.offset, r.Click.TS, cv.v.TS, false)
 		case state.LookupParked, state.LookupParkedBefore:
 			// Joined when the click comes, or settled by the sweep.
 		case state.LookupDuplicate:
@@ -224,76 +392,12 @@ func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 		}
 	}
 
-	// Sweep: conversions whose click did not come before their deadline.
-	if wm != noTime {
-		for _, tp := range g.assigned {
-			if tp.Topic != cfg.Kafka.ConversionTopic {
-				continue
-			}
-			var due []state.Orphan
-			if err := s.retry(ctx, "due orphans", func(ctx context.Context) error {
-				var err error
-				due, err = s.store.DueOrphans(ctx, tp.Topic, tp.Partition, wm)
-				return err
-			}); err != nil {
-				return res, err
-			}
-			for _, o := range due {
-				s.log.Debug("orphan due", zap.String("click", o.ClickID), zap.Int64("deadline", o.Deadline), zap.Int64("watermark", wm))
-				raw[o.Origin] = o.Raw
-				if rej, err := g.settleOrphan(ctx, cfg, db, o); err != nil {
-					return res, err
-				} else if rej != nil {
-					refuse(o.Origin, rej)
-				}
-			}
-		}
-	}
-
 	// Apply, experiment by experiment, each with the offsets it covers.
-	deltas := db.deltas(b)
-	for _, d := range deltas {
-		var ar state.ApplyResult
-		err := s.retry(ctx, "apply", func(ctx context.Context) error {
-			var err error
-			ar, err = s.store.Apply(ctx, d)
-			return err
-		})
-		switch {
-		case errors.Is(err, state.ErrFenced):
-			return res, fmt.Errorf("experiment %q: %w: %w", d.Experiment, errFenced, err)
-		case errors.Is(err, state.ErrLayoutMismatch):
-			// Refuse this experiment's events; reload its stored layout
-			// for the next batch.
-			s.log.Error("experiment stored with another layout", zap.String("experiment", d.Experiment), zap.Error(err))
-			delete(g.exps, d.Experiment)
-			for _, org := range db.origins[d.Experiment] {
-				refuse(org, reject(ReasonLayoutMismatch, "experiment %q is stored with another layout than %+v", d.Experiment, d.Layout))
-			}
-			continue
-		case err != nil:
-			// Overlap or layout mismatch: the cached records are stale;
-			// forget them so the next generation reloads them.
-			delete(g.exps, d.Experiment)
-			return res, fmt.Errorf("apply experiment %q: %w", d.Experiment, err)
-		}
-		e := g.exps[d.Experiment]
-		for _, r := range d.Ranges {
-			e.applied[state.TopicPartition{Topic: r.Topic, Partition: r.Partition}] = r.To
-		}
-		for _, dup := range ar.Duplicates {
-			refuse(dup.Conversion.Origin, reject(ReasonDuplicateConversion, "click %q already converted (%s)", dup.Conversion.ClickID, dup.CountedOrigin))
-		}
-		if db.events[d.Experiment] > 0 {
-			s.markChanged(d.Experiment)
-		}
-		if s.hooks.afterApply != nil {
-			if err := s.hooks.afterApply(d.Experiment); err != nil {
-				return res, err
-			}
-		}
+	n, err := g.apply(ctx, db, b, refuse)
+	if err != nil {
+		return res, err
 	}
-	res.deltas = len(deltas)
+	res.deltas = n
 	res.events = b.len()
 	res.deadLetters = len(dls)
 
@@ -332,9 +436,172 @@ func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 	return res, nil
 }
 
+// apply applies the deltas of db (covering batch b, or no offsets when b
+// is nil) and returns how many were applied. A delta refused as
+// overlapping applied offsets (a zombie's late write, or another writer,
+// made the cached offsets stale) is rebuilt from the experiment's stored
+// offsets, without the events they cover, and retried; refused by a newer
+// generation, it ends the generation.
+func (g *genState) apply(ctx context.Context, db *deltaBuilder, b *batch, refuse func(string, *RejectError)) (int, error) {
+	s := g.s
+	applied := 0
+	for _, id := range db.ids() {
+		d := db.build(id, b)
+		var ar state.ApplyResult
+		var err error
+		for attempt := 1; d != nil; attempt++ {
+			err = s.retry(ctx, "apply", func(ctx context.Context) error {
+				var err error
+				ar, err = s.store.Apply(ctx, d)
+				return err
+			})
+			if !errors.Is(err, state.ErrOverlap) || attempt == overlapAttempts {
+				break
+			}
+			s.log.Warn("delta overlaps applied offsets; reloading them", zap.String("experiment", id), zap.Int("attempt", attempt), zap.Error(err))
+			var offs map[state.TopicPartition]state.AppliedOffset
+			if err := s.retry(ctx, "offsets", func(ctx context.Context) error {
+				var err error
+				offs, err = s.store.Offsets(ctx, id)
+				return err
+			}); err != nil {
+				return applied, err
+			}
+			e := db.exps[id]
+			for tp, ao := range offs {
+				if last, ok := e.applied[tp]; !ok || ao.Offset > last {
+					e.applied[tp] = ao.Offset
+				}
+			}
+			d = db.build(id, b)
+		}
+		if d == nil {
+			continue // everything it covered was applied by another writer
+		}
+		switch {
+		case errors.Is(err, state.ErrFenced):
+			return applied, fmt.Errorf("experiment %q: %w: %w (if this repeats after every rejoin, the consumer group was probably deleted or recreated and its generation ids restarted below the stored ones: stop every other writer of this Redis prefix and run ripen run --reset-fencing once)", id, errFenced, err)
+		case errors.Is(err, state.ErrLayoutMismatch):
+			// Refuse this experiment's events; reload its stored layout
+			// for the next batch.
+			s.log.Error("experiment stored with another layout", zap.String("experiment", id), zap.Error(err))
+			delete(g.exps, id)
+			for _, org := range db.origins(id) {
+				refuse(org, reject(ReasonLayoutMismatch, "experiment %q is stored with another layout than %+v", id, d.Layout))
+			}
+			continue
+		case err != nil:
+			// The cached records are stale; forget them so that the next
+			// generation reloads them.
+			delete(g.exps, id)
+			return applied, fmt.Errorf("apply experiment %q: %w", id, err)
+		}
+		applied++
+		e := db.exps[id]
+		for _, r := range d.Ranges {
+			e.applied[state.TopicPartition{Topic: r.Topic, Partition: r.Partition}] = r.To
+		}
+		for _, dup := range ar.Duplicates {
+			refuse(dup.Conversion.Origin, reject(ReasonDuplicateConversion, "click %q already converted (%s)", dup.Conversion.ClickID, dup.CountedOrigin))
+		}
+		if s.hooks.afterApply != nil {
+			if err := s.hooks.afterApply(id); err != nil {
+				return applied, err
+			}
+		}
+	}
+	return applied, nil
+}
+
+// sweep settles, for every owned conversion partition, the parked orphans
+// due by the sweep watermark (see groupTimes.sweepWatermark), in three
+// phases: mark them
+// expiring (state.Store.DueOrphans), apply the self-attributed ones and
+// dead-letter the others, then delete them (SettleOrphans). A crash
+// between phases loses nothing: marked orphans come back from the next
+// sweep, and their conversion markers keep them from counting twice.
+// Sweeping after every event released by the boundary is applied and
+// before the boundary tick's refits (which wait for every conversion
+// partition's sweep) makes what expires a function of the logs alone.
+func (g *genState) sweep(ctx context.Context) error {
+	s := g.s
+	cfg := s.config()
+	wm, vacuous, ok := g.times.sweepWatermark(cfg.Pipeline.RefitEvery.Milliseconds())
+	if !ok {
+		return nil
+	}
+	for _, tp := range g.assigned {
+		if tp.Topic != cfg.Kafka.ConversionTopic {
+			continue
+		}
+		if last, ok := g.swept[tp]; ok && last != noTime && wm <= last {
+			continue
+		}
+		if vacuous {
+			g.swept[tp] = wm
+			continue
+		}
+		var due []state.Orphan
+		if err := s.retry(ctx, "due orphans", func(ctx context.Context) error {
+			var err error
+			due, err = s.store.DueOrphans(ctx, tp.Topic, tp.Partition, wm, fmt.Sprintf("%s@%d", tp, g.id))
+			return err
+		}); err != nil {
+			return err
+		}
+		if len(due) == 0 {
+			g.swept[tp] = wm
+			continue
+		}
+		db := newDeltaBuilder(wm, g.id)
+		var dls []DeadLetter
+		refuse := func(org string, raw []byte, rej *RejectError) { dls = append(dls, s.deadLetter(org, raw, rej)) }
+		raw := map[string][]byte{}
+		ids := make([]string, 0, len(due))
+		for _, o := range due {
+			s.log.Debug("orphan due", zap.String("click", o.ClickID), zap.Int64("deadline", o.Deadline), zap.Int64("watermark", wm))
+			raw[o.Origin] = o.Raw
+			ids = append(ids, o.ClickID)
+			rej, err := g.settleOrphan(ctx, cfg, db, o)
+			if err != nil {
+				return err
+			}
+			if rej != nil {
+				refuse(o.Origin, o.Raw, rej)
+			}
+		}
+		if s.hooks.afterSweepMark != nil {
+			if err := s.hooks.afterSweepMark(); err != nil {
+				return err
+			}
+		}
+		if _, err := g.apply(ctx, db, nil, func(org string, rej *RejectError) { refuse(org, raw[org], rej) }); err != nil {
+			return err
+		}
+		if err := s.retry(ctx, "write dead letters", func(ctx context.Context) error {
+			return s.deadLetters.write(ctx, dls)
+		}); err != nil {
+			return err
+		}
+		if s.hooks.beforeSweepSettle != nil {
+			if err := s.hooks.beforeSweepSettle(); err != nil {
+				return err
+			}
+		}
+		if err := s.retry(ctx, "settle orphans", func(ctx context.Context) error {
+			return s.store.SettleOrphans(ctx, tp.Topic, tp.Partition, ids)
+		}); err != nil {
+			return err
+		}
+		g.swept[tp] = wm
+	}
+	return nil
+}
+
 // settleOrphan handles a conversion whose click never came: one that
 // carries its own attribution is counted with its click (as BuildOffline
-// self-attributes it); any other is refused as orphan_expired.
+// self-attributes it), guarded by its conversion marker; any other is
+// refused as orphan_expired.
 func (g *genState) settleOrphan(ctx context.Context, cfg Config, db *deltaBuilder, o state.Orphan) (*RejectError, error) {
 	v, err := DecodeConversion(o.Raw)
 	var rej *RejectError
@@ -351,9 +618,18 @@ func (g *genState) settleOrphan(ctx context.Context, cfg Config, db *deltaBuilde
 	if rej := checkDelay(v.ClickTS, v.TS, e.windowMs); rej != nil {
 		return rej, nil
 	}
-	db.click(e, v.Arm, o.Origin, v.ClickTS)
-	db.conversion(e, v.Arm, o.ClickID, o.Origin, v.ClickTS, v.TS)
+	tp, off, _ := parseOrigin(o.Origin)
+	db.conversion(e, v.Arm, o.ClickID, o.Origin, tp, off, v.ClickTS, v.TS, true)
 	return nil, nil
+}
+
+// deadLetter builds the dead letter of the message read at org.
+func (s *Service) deadLetter(org string, raw []byte, rej *RejectError) DeadLetter {
+	tp, off, err := parseOrigin(org)
+	if err != nil {
+		s.log.Error("dead letter with unparsable origin", zap.String("origin", org), zap.Error(err))
+	}
+	return newDeadLetter(tp.Topic, tp.Partition, off, raw, rej)
 }
 
 // experiment returns what the generation knows of an experiment, loading

@@ -4,7 +4,6 @@ import (
 	"context"
 	"errors"
 	"fmt"
-	"maps"
 	"sync"
 	"time"
 
@@ -44,6 +43,28 @@ const (
 // deltas to Redis with the offsets they cover, refits experiments on
 // event-time ticks and publishes their traffic weights. It implements
 // StatusSource for the HTTP endpoints.
+//
+// Determinism. Refit ticks are the multiples of pipeline.refit_every in
+// event time (aligned to the Unix epoch). Every instance records in Redis,
+// per partition it owns, the latest event time it read and the time
+// through which it applied the partition's events; the group's watermark
+// and refit barrier are computed from every partition's record, not just
+// the instance's own (see groupTimes). Events after the next tick boundary
+// are held back (each partition's longest run of events at or before the
+// boundary, in offset order, is applied) until every refit of that tick is
+// done. Each experiment is refitted and published by one instance only:
+// the owner of click partition fnv32a(experiment) mod the number of click
+// partitions, once every partition applied its events through the tick.
+// So the refit at tick T sees exactly the events at or before T, at state
+// watermark at most T, whoever consumed them and however they were
+// batched; evaluations are cold-started and seeded by experiment and
+// as-of time, and the previous weights come from Redis. Guarantee: a
+// replay of the same topics publishes the same sequence of weights as long
+// as no event is more than pipeline.lateness out of order within its
+// partition (later ones are still counted, possibly after a refit they
+// belonged to), the hold-back cap is not exceeded and no partition turns
+// idle while others still lag (a live-mode liveness rule that wall-clock
+// pauses of the producers can trigger).
 type Service struct {
 	cfgMu sync.RWMutex
 	cfg   Config
@@ -58,21 +79,34 @@ type Service struct {
 	mu        sync.Mutex
 	redisUp   bool
 	inGroup   bool
-	known     map[string]bool // experiments admitted under limits.max_experiments
-	changed   map[string]bool // experiments with new events since their last refit
-	published map[string]publication
-	warm      map[string]map[string]*estimator.Fit
-	refitTick ticker
+	known     map[string]bool  // experiments admitted under limits.max_experiments
+	published map[string]int64 // seq of the last allocation this instance wrote, per experiment
 	watermark int64
+	// fenceReset is set once the fencing base was raised for
+	// pipeline.reset_fencing (it is done once per run).
+	fenceReset bool
+	// overflows counts hold-back overflows (pipeline.holdback_cap).
+	overflows int
 
 	hooks testHooks
 }
 
-// testHooks let tests stop the pipeline at chosen points, as a crash would.
+// testHooks let tests stop the pipeline at chosen points, as a crash would,
+// or slow it down. An error aborts the run at once, without any graceful
+// step.
 type testHooks struct {
-	// afterApply runs after each experiment's delta is applied; an error
-	// aborts the run at once, without any graceful step.
+	// afterApply runs after each experiment's delta is applied.
 	afterApply func(experiment string) error
+	// afterSweepMark runs after the orphan sweep marked and read the due
+	// orphans of a partition, before anything is applied.
+	afterSweepMark func() error
+	// beforeSweepSettle runs after the sweep applied and dead-lettered
+	// them, before they are deleted.
+	beforeSweepSettle func() error
+	// beforeStep runs before each pipeline step (a flush).
+	beforeStep func()
+	// onTimes observes the group times each step computed.
+	onTimes func(groupTimes)
 }
 
 // New returns a Service for cfg (defaults applied, then validated).
@@ -101,10 +135,7 @@ func New(cfg Config, deps Deps) (*Service, error) {
 		metrics:   deps.Metrics,
 		refitFn:   deps.Refit,
 		known:     map[string]bool{},
-		changed:   map[string]bool{},
-		published: map[string]publication{},
-		warm:      map[string]map[string]*estimator.Fit{},
-		refitTick: ticker{periodMs: cfg.Pipeline.RefitEvery.Milliseconds(), last: noTime},
+		published: map[string]int64{},
 		watermark: noTime,
 	}
 	s.deadLetters = &deadLetters{w: newWriter(cfg.Kafka, cfg.Kafka.DeadLetterTopic, transport), metrics: deps.Metrics}
@@ -267,14 +298,6 @@ func (s *Service) setWatermark(wm int64) {
 	}
 }
 
-// markChanged records that an experiment got new events since its last
-// refit.
-func (s *Service) markChanged(id string) {
-	s.mu.Lock()
-	s.changed[id] = true
-	s.mu.Unlock()
-}
-
 // admitExperiment admits a new experiment unless limit (> 0) experiments
 // are known already; known experiments are always admitted.
 func (s *Service) admitExperiment(id string, limit int) bool {
@@ -354,17 +377,4 @@ func (s *Service) applyControl(key, value []byte) error {
 	}
 	s.cfg = next
 	return nil
-}
-
-// changedExperiments returns and clears the experiments changed since the
-// last call.
-func (s *Service) changedExperiments() []string {
-	s.mu.Lock()
-	defer s.mu.Unlock()
-	ids := make([]string, 0, len(s.changed))
-	for id := range maps.Keys(s.changed) {
-		ids = append(ids, id)
-	}
-	clear(s.changed)
-	return ids
 }

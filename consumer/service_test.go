@@ -169,6 +169,9 @@ func (e *testEnv) config(group string) Config {
 	c.Pipeline.Lateness = 2 * time.Minute
 	c.Pipeline.RefitEvery = 40 * time.Minute
 	c.Pipeline.OrphanTTL = time.Hour
+	// Short, so that once the stream is consumed its quiet partitions stop
+	// holding the watermark back quickly.
+	c.Pipeline.IdleTimeout = 300 * time.Millisecond
 	c.Defaults.Window = testWindow
 	c.ShutdownTimeout = 10 * time.Second
 	return c.WithDefaults()

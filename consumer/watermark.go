@@ -1,124 +1,220 @@
 package consumer
 
 import (
-	"fmt"
+	"hash/fnv"
 	"math"
-	"strings"
 
 	"ripen/state"
 )
 
 // noTime marks an event time not known yet.
-const noTime = math.MinInt64
+const noTime = state.NoTime
 
-// watermarks tracks the event-time watermark of one consumer: the minimum
-// over its assigned partitions of the latest event time seen, minus the
-// allowed lateness. A partition with messages still to read holds the
-// watermark back even before its first event arrives, so that a slow start
-// of one partition cannot make another's conversions look overdue. A
-// partition that is caught up with its log end does not hold it back
-// (otherwise an idle partition would stop it forever); when every
-// partition is idle the watermark follows the latest time seen anywhere.
-// The watermark never moves backwards.
-type watermarks struct {
-	latenessMs int64
-	parts      map[state.TopicPartition]*partitionTime
-	wm         int64
+// forever stands for "no bound" in the minimum computations below.
+const forever = int64(math.MaxInt64)
+
+// groupTimes is what one instance knows of the event-time progress of the
+// whole consumer group, computed from the progress every partition's owner
+// recorded in Redis (state.PartitionProgress) and from Kafka metadata. A
+// partition whose log was empty when the generation started and that never
+// reported is left out of all of them; any other partition that has not
+// reported yet leaves them unknown.
+//
+//   - watermark: the minimum over every partition of both input topics of
+//     the latest event time seen, minus the lateness. An idle partition
+//     (caught up with no new event for pipeline.idle_timeout of wall clock)
+//     is left out until it gets an event again; when every partition is
+//     idle the watermark is the latest time seen anywhere (nothing is in
+//     flight). The wall clock thus only decides liveness at the head of the
+//     log: a partition that lags is never idle, so replays never take this
+//     path while they catch up. The watermark never moves backwards.
+//   - applied: the minimum over the partitions (idle ones included) of the
+//     time through which each applied its events (see appliedThrough).
+//   - swept: the minimum over the conversion partitions of the last tick
+//     through which their owner settled the due orphans.
+//   - boundary: the hold-back boundary, one refit period after the last
+//     tick whose refits every click partition's owner completed; events
+//     after it are held back (see genState.release). Unknown until every
+//     click partition's owner marked a tick.
+type groupTimes struct {
+	watermark int64
+	applied   int64
+	swept     int64
+	boundary  int64
 }
 
-type partitionTime struct {
-	latest   int64 // latest event time seen, noTime if none
-	caughtUp bool  // the last message read was the log's last
+// unknownTimes is a groupTimes that knows nothing.
+var unknownTimes = groupTimes{watermark: noTime, applied: noTime, swept: noTime, boundary: noTime}
+
+// partitionMeta is what the generation knows of every partition of the
+// input topics.
+type partitionMeta struct {
+	// all lists every partition of the click and conversion topics.
+	all []state.TopicPartition
+	// empty marks partitions whose log held no message when the
+	// generation started.
+	empty map[state.TopicPartition]bool
+	// clickTopic and clickParts name the click topic and its partition
+	// count (refit ownership and the boundary use them).
+	clickTopic string
+	clickParts int
 }
 
-func newWatermarks(latenessMs int64, assigned []state.TopicPartition) *watermarks {
-	w := &watermarks{latenessMs: latenessMs, parts: make(map[state.TopicPartition]*partitionTime, len(assigned)), wm: noTime}
-	for _, tp := range assigned {
-		w.parts[tp] = &partitionTime{latest: noTime}
-	}
-	return w
-}
-
-// observe records an event of time ts read from tp; caughtUp says whether
-// it was the last message of the partition's log when it was fetched.
-func (w *watermarks) observe(tp state.TopicPartition, ts int64, caughtUp bool) {
-	p := w.parts[tp]
-	if p == nil {
-		p = &partitionTime{latest: noTime}
-		w.parts[tp] = p
-	}
-	p.latest = max(p.latest, ts)
-	p.caughtUp = caughtUp
-}
-
-// progress records whether the last message read from tp (decodable or
-// not) was the last of its log.
-func (w *watermarks) progress(tp state.TopicPartition, caughtUp bool) {
-	if p := w.parts[tp]; p != nil {
-		p.caughtUp = caughtUp
-	}
-}
-
-// idle marks tp as caught up with its log end (nothing to read).
-func (w *watermarks) idle(tp state.TopicPartition) {
-	if p := w.parts[tp]; p != nil {
-		p.caughtUp = true
-	}
-}
-
-// advance recomputes the watermark from what was observed and returns it
-// (noTime while nothing was seen).
-func (w *watermarks) advance() int64 {
-	low, high := int64(math.MaxInt64), int64(noTime)
-	active := false
-	for _, p := range w.parts {
-		if p.latest == noTime {
-			if !p.caughtUp {
-				return w.wm // its first events are still to come
+// computeGroupTimes derives groupTimes from the recorded progress; prev is
+// the previous watermark (it never moves back).
+func computeGroupTimes(meta partitionMeta, prog map[string]map[int]state.PartitionProgress, latenessMs, periodMs, prev int64) groupTimes {
+	gt := unknownTimes
+	gt.watermark = prev
+	low, high := forever, noTime
+	applied, swept := forever, forever
+	active, known, appliedKnown, sweptKnown := false, true, true, true
+	for _, tp := range meta.all {
+		rec, ok := prog[tp.Topic][tp.Partition]
+		if !ok || rec.Seen == noTime {
+			if !meta.empty[tp] {
+				known = false
 			}
 			continue
 		}
-		high = max(high, p.latest)
-		if !p.caughtUp {
-			low = min(low, p.latest)
-			active = true
+		high = max(high, rec.Seen)
+		if rec.Applied == noTime {
+			appliedKnown = false
+		} else {
+			applied = min(applied, rec.Applied)
+		}
+		if tp.Topic != meta.clickTopic {
+			if rec.Swept == noTime {
+				sweptKnown = false
+			} else {
+				swept = min(swept, rec.Swept)
+			}
+		}
+		if rec.Idle {
+			continue
+		}
+		active = true
+		low = min(low, rec.Seen)
+	}
+	if known && high != noTime {
+		cand := high
+		if active {
+			cand = low - latenessMs
+		}
+		if gt.watermark == noTime || cand > gt.watermark {
+			gt.watermark = cand
 		}
 	}
-	if high == noTime {
-		return w.wm
+	if known && appliedKnown && applied != forever {
+		gt.applied = applied
 	}
-	cand := high
-	if active {
-		cand = low
+	if known && sweptKnown {
+		gt.swept = swept // forever when no conversion partition reported
 	}
-	if cand-w.latenessMs > w.wm {
-		w.wm = cand - w.latenessMs
+	done := forever
+	for p := range meta.clickParts {
+		rec, ok := prog[meta.clickTopic][p]
+		if !ok || rec.Refitted == noTime {
+			done = noTime
+			break
+		}
+		done = min(done, rec.Refitted)
 	}
-	return w.wm
+	if done != noTime && done != forever {
+		gt.boundary = done + periodMs
+	}
+	return gt
 }
 
-// current returns the last computed watermark.
-func (w *watermarks) current() int64 { return w.wm }
-
-// ticker fires once each time an event-time clock crosses a multiple of
-// its period: refits happen at the same event times whatever the batching.
-type ticker struct {
-	periodMs int64
-	last     int64 // index of the last tick fired; noTime before the first
+// sweepWatermark returns the event time through which the due orphans may
+// be settled now: the watermark, but only once every partition applied its
+// events through the hold-back boundary, and never past it. The boundary
+// does not move until the refits of its tick are done, which wait for
+// this sweep; so at that moment exactly the events released by the
+// boundary are applied, whoever applied them, and what expires (rather
+// than joins a click) is a function of the logs alone. While the boundary
+// is unknown nothing was applied and nothing is parked: vacuous is set and
+// the sweep may be recorded without sweeping, at the last tick the group
+// applied through. ok is false when nothing may be swept yet.
+func (gt groupTimes) sweepWatermark(periodMs int64) (wm int64, vacuous, ok bool) {
+	switch {
+	case gt.watermark == noTime || gt.applied == noTime:
+		return 0, false, false
+	case gt.boundary == noTime:
+		return floorDiv(min(gt.watermark, gt.applied), periodMs) * periodMs, true, true
+	case gt.applied < gt.boundary:
+		return 0, false, false
+	}
+	return min(gt.watermark, gt.boundary), false, true
 }
 
-// due reports whether wm crossed a tick boundary since the last call that
-// returned true, and the tick time (the boundary) if so.
-func (t *ticker) due(wm int64) (int64, bool) {
-	if wm == noTime || t.periodMs <= 0 {
+// refitThrough returns the last refit tick (a multiple of periodMs) whose
+// refits may run: every partition applied its events through it, the
+// watermark passed it and the orphans due by it were settled; false if
+// not known yet.
+func (gt groupTimes) refitThrough(periodMs int64) (int64, bool) {
+	if gt.watermark == noTime || gt.applied == noTime || gt.swept == noTime {
 		return 0, false
 	}
-	idx := floorDiv(wm, t.periodMs)
-	if t.last != noTime && idx <= t.last {
-		return 0, false
+	return floorDiv(min(gt.watermark, gt.applied, gt.swept), periodMs) * periodMs, true
+}
+
+// keyWatermark is the watermark the bucket keys of a flush's deltas are
+// computed at: the watermark, but not past the hold-back boundary; else
+// fallback (keys computed early are merely finer than canonical; reading
+// re-keys them).
+func (gt groupTimes) keyWatermark(fallback int64) int64 {
+	switch {
+	case gt.watermark == noTime:
+		return fallback
+	case gt.boundary == noTime:
+		return gt.watermark
 	}
-	t.last = idx
-	return idx * t.periodMs, true
+	return min(gt.watermark, gt.boundary)
+}
+
+// appliedThrough is the applied-through time an owner reports for one of
+// its partitions after a flush: every event of the partition whose
+// prefix maximum (the largest event time at or before it in the log) is
+// at or before it has been applied. Events are released in log order up to
+// the first one after the hold-back boundary (genState.release), so:
+// with a held event, everything with a prefix maximum below its time is
+// applied; with none, everything read is, and every unread event has a
+// prefix maximum at least the latest time read (seen). An idle partition
+// with nothing held claims the boundary: it is caught up, and an event
+// that comes later is late. The claim is a property of the log, whoever
+// applied the events; NoTime (nothing read yet) leaves the recorded claim
+// of an earlier owner as it is.
+func appliedThrough(gt groupTimes, idle bool, firstHeld, seen int64) int64 {
+	x := forever
+	if gt.boundary != noTime {
+		x = gt.boundary
+	}
+	switch {
+	case firstHeld != noTime:
+		x = min(x, firstHeld-1)
+	case idle:
+	case seen == noTime:
+		return noTime
+	default:
+		x = min(x, seen-1)
+	}
+	if x == forever {
+		return gt.watermark
+	}
+	return x
+}
+
+// refitPartition returns the click partition whose owner refits and
+// publishes experiment id: FNV-1a (32-bit) of the id modulo the number of
+// click partitions. The group's assignment thus decides who refits, with
+// no coordinator of our own.
+func refitPartition(id string, clickParts int) int {
+	if clickParts <= 0 {
+		return 0
+	}
+	h := fnv.New32a()
+	_, _ = h.Write([]byte(id))
+	return int(h.Sum32() % uint32(clickParts))
 }
 
 func floorDiv(a, b int64) int64 {
@@ -127,13 +223,4 @@ func floorDiv(a, b int64) int64 {
 		q--
 	}
 	return q
-}
-
-// String describes every partition's latest time and idleness, for logs.
-func (w *watermarks) String() string {
-	var b strings.Builder
-	for tp, p := range w.parts {
-		fmt.Fprintf(&b, "%s=%d/%t ", tp, p.latest, p.caughtUp)
-	}
-	return b.String()
 }

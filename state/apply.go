@@ -77,6 +77,12 @@ type ConversionDelta struct {
 	DelayBin int
 	// DelayMs is the conversion delay in milliseconds.
 	DelayMs int64
+	// WithClick adds the conversion's click too (in Bucket, or to the
+	// matured clicks), counted only if the conversion is: a self-attributed
+	// conversion whose click is not in the click stream brings its own
+	// click, and the conversion marker keeps a re-read from counting it
+	// twice.
+	WithClick bool
 }
 
 // ApplyResult says what Apply did.
@@ -112,6 +118,10 @@ type Duplicate struct {
 // ErrLayoutMismatch if the experiment has another layout, and ErrOverlap if
 // a range partly covers applied offsets; it skips it whole (Skipped) if
 // every range was applied before. Running it twice applies it once.
+//
+// A delta without ranges may carry only conversions (self-attributed ones
+// with WithClick included): they are applied unconditionally, each counted
+// once by its conversion marker. The orphan sweep uses such deltas.
 func (s *Store) Apply(ctx context.Context, d *ExperimentDelta) (ApplyResult, error) {
 	const op = "apply"
 	call, err := s.buildApply(d)
@@ -157,7 +167,13 @@ func (s *Store) buildApply(d *ExperimentDelta) (applyCall, error) {
 		return applyCall{}, fmt.Errorf("%w: experiment %q: watermark %d out of range", ErrInvalid, exp, d.Watermark)
 	}
 	if len(d.Ranges) == 0 {
-		return applyCall{}, fmt.Errorf("%w: experiment %q: delta covers no offsets", ErrInvalid, exp)
+		// Without offsets only conversions may be applied: their markers
+		// keep a repeated delta from counting twice; clicks have none.
+		for name, a := range d.Arms {
+			if a != nil && (len(a.Clicks) > 0 || a.MaturedClicks > 0) {
+				return applyCall{}, fmt.Errorf("%w: experiment %q arm %q: a delta without offsets carries clicks", ErrInvalid, exp, name)
+			}
+		}
 	}
 	maxLevel := levels(layout)
 	nbins := len(layout.DelayEdges()) - 1
@@ -238,15 +254,18 @@ func (s *Store) buildApply(d *ExperimentDelta) (applyCall, error) {
 			if c.DelayMs < 0 || c.DelayMs >= maxExact {
 				return applyCall{}, fmt.Errorf("%w: experiment %q arm %q: delay %dms out of range", ErrInvalid, exp, name, c.DelayMs)
 			}
-			bf := "mv"
+			bf, cf := "mv", "mc"
 			if !c.Matured {
 				if c.Bucket.Level > maxLevel {
 					return applyCall{}, fmt.Errorf("%w: experiment %q arm %q: bucket level %d above maximum %d", ErrInvalid, exp, name, c.Bucket.Level, maxLevel)
 				}
-				bf = bucketField('v', c.Bucket)
+				bf, cf = bucketField('v', c.Bucket), bucketField('b', c.Bucket)
+			}
+			if !c.WithClick {
+				cf = ""
 			}
 			keys = append(keys, s.keys.marker(exp, c.ClickID))
-			args = append(args, c.Origin, bf, "d:"+strconv.Itoa(c.DelayBin), c.DelayMs)
+			args = append(args, c.Origin, bf, "d:"+strconv.Itoa(c.DelayBin), c.DelayMs, cf)
 			convs = append(convs, Duplicate{Arm: name, Conversion: c})
 		}
 	}

@@ -2,6 +2,7 @@ package state
 
 import (
 	"errors"
+	"fmt"
 	"reflect"
 	"slices"
 	"testing"
@@ -341,11 +342,11 @@ func TestApplyInvalid(t *testing.T) {
 	s, rdb, _ := newStore(t, Options{})
 	ctx := testCtx(t)
 	cases := map[string]func(d *ExperimentDelta){
-		"no ranges":       func(d *ExperimentDelta) { d.Ranges = nil },
-		"brace in id":     func(d *ExperimentDelta) { d.Experiment = "a}b" },
-		"from after to":   func(d *ExperimentDelta) { d.Ranges[0].From = 9; d.Ranges[0].To = 3 },
-		"two ranges":      func(d *ExperimentDelta) { d.Ranges = append(d.Ranges, d.Ranges[0]) },
-		"converted click": func(d *ExperimentDelta) { d.Arms["a"].Clicks[0].Converted = 1 },
+		"clicks, no ranges": func(d *ExperimentDelta) { d.Ranges = nil },
+		"brace in id":       func(d *ExperimentDelta) { d.Experiment = "a}b" },
+		"from after to":     func(d *ExperimentDelta) { d.Ranges[0].From = 9; d.Ranges[0].To = 3 },
+		"two ranges":        func(d *ExperimentDelta) { d.Ranges = append(d.Ranges, d.Ranges[0]) },
+		"converted click":   func(d *ExperimentDelta) { d.Arms["a"].Clicks[0].Converted = 1 },
 		"bad delay bin": func(d *ExperimentDelta) {
 			d.Arms["a"].Conversions = []ConversionDelta{{ClickID: "k", Origin: "o", DelayBin: 10_000}}
 		},
@@ -365,5 +366,61 @@ func TestApplyInvalid(t *testing.T) {
 	}
 	if n, err := rdb.DBSize(ctx).Result(); err != nil || n != 0 {
 		t.Fatalf("invalid deltas wrote %d keys (%v)", n, err)
+	}
+}
+
+// TestSelfAttributedClickCountsOnce applies a self-attributed conversion
+// (it brings its own click) in two deltas covering different offsets, as a
+// sweep re-run after a crash does: the conversion marker guards the click
+// as well as the conversion, so both count once; a matured one goes to the
+// matured totals. The expected state is built with the estimator's own
+// AddClicks and AddConversion.
+func TestSelfAttributedClickCountsOnce(t *testing.T) {
+	s, _, _ := newStore(t, Options{})
+	ctx := testCtx(t)
+	wm := t0 + 3*3600_000
+	recent, old := wm-600_000, wm-2*3600_000 // the window is 1h: old is matured
+	delta := func(from int64) *ExperimentDelta {
+		d := &ExperimentDelta{
+			Experiment: "e", Layout: testLayout, Watermark: wm, Generation: 1,
+			Ranges: []OffsetRange{{Topic: "clicks", Partition: 0, From: from, To: from}},
+			Arms:   map[string]*ArmDelta{"a": {}},
+		}
+		for i, ts := range []int64{recent, old} {
+			key, matured := bucketAt(testLayout, wm, ts)
+			d.Arms["a"].Conversions = append(d.Arms["a"].Conversions, ConversionDelta{
+				ClickID: fmt.Sprintf("self%d", i), Origin: fmt.Sprintf("convs/0/%d", i), Bucket: key, Matured: matured,
+				DelayBin: delayBinOf(testLayout, 60_000), DelayMs: 60_000, WithClick: true,
+			})
+		}
+		return d
+	}
+	// The first delta covers offsets, the others another offset and none
+	// (as the sweep's deltas do).
+	for i, from := range []int64{0, 7, -1} {
+		d := delta(max(from, 0))
+		if from < 0 {
+			d.Ranges = nil
+		}
+		res, err := s.Apply(ctx, d)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if wantCounted := 2 * max(1-i, 0); res.Counted != wantCounted || res.Redelivered != 2-wantCounted || res.Skipped {
+			t.Fatalf("apply %d: %+v, want %d counted", i, res, wantCounted)
+		}
+	}
+	e, err := s.Load(ctx, "e")
+	if err != nil {
+		t.Fatal(err)
+	}
+	want := estimator.NewArmState(testLayout)
+	want.Advance(wm)
+	for _, ts := range []int64{recent, old} {
+		want.AddClicks(ts, 1)
+		want.AddConversion(ts, ts+60_000)
+	}
+	if g, w := e.States["a"].Snapshot(), want.Snapshot(); !reflect.DeepEqual(g, w) {
+		t.Fatalf("state %s, want %s", summary(g), summary(w))
 	}
 }

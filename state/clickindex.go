@@ -21,6 +21,10 @@ type ClickRecord struct {
 	// Window is the experiment's attribution window; the entry lives for
 	// Window + Options.ClickTTLSlack.
 	Window time.Duration
+	// Origin is where the click was read, "<topic>/<partition>/<offset>";
+	// it tells a redelivery (same origin) from a duplicate click id.
+	// Default: "" (then identical records count as redeliveries).
+	Origin string
 }
 
 // ClickEntry is what the click index knows about a click.
@@ -29,6 +33,46 @@ type ClickEntry struct {
 	Experiment, Arm string
 	// TS is the click time (Unix ms).
 	TS int64
+	// Origin is where the indexed click was read ("" if not recorded).
+	Origin string
+}
+
+// ClickStatus is the outcome of indexing one click.
+type ClickStatus int
+
+// Click index outcomes.
+const (
+	// ClickNew: the click was indexed now.
+	ClickNew ClickStatus = iota + 1
+	// ClickRedelivered: the same click (same origin and content) was
+	// indexed before; it counts as the first copy did.
+	ClickRedelivered
+	// ClickDuplicate: another click holds the id; nothing was stored and
+	// ClickResult.Existing says which click that is.
+	ClickDuplicate
+)
+
+// String names the status.
+func (s ClickStatus) String() string {
+	switch s {
+	case ClickNew:
+		return "new"
+	case ClickRedelivered:
+		return "redelivered"
+	case ClickDuplicate:
+		return "duplicate"
+	}
+	return "ClickStatus(" + strconv.Itoa(int(s)) + ")"
+}
+
+// ClickResult is the outcome of indexing one ClickRecord.
+type ClickResult struct {
+	Status ClickStatus
+	// Existing is the click that holds the id, with ClickDuplicate.
+	Existing ClickEntry
+	// Orphan is the conversion that was parked waiting for the click, now
+	// claimed (nil if none, and always nil with ClickDuplicate).
+	Orphan *Orphan
 }
 
 // Orphan is a conversion that arrived before its click and was parked.
@@ -121,10 +165,30 @@ type LookupResult struct {
 	Claimed bool
 }
 
-// PutClicks indexes clicks (one atomic script per click, all in one
-// pipeline) and returns the orphan conversions that were parked waiting for
-// them, now claimed, for the caller to join.
+// PutClicks indexes clicks like IndexClicks and returns the orphan
+// conversions that were parked waiting for the clicks it indexed (new or
+// redelivered), now claimed, for the caller to join.
 func (s *Store) PutClicks(ctx context.Context, clicks []ClickRecord) ([]Orphan, error) {
+	res, err := s.IndexClicks(ctx, clicks)
+	if err != nil {
+		return nil, err
+	}
+	var orphans []Orphan
+	for _, r := range res {
+		if r.Orphan != nil {
+			orphans = append(orphans, *r.Orphan)
+		}
+	}
+	return orphans, nil
+}
+
+// IndexClicks indexes clicks, one atomic script per click, all in one
+// pipeline, in order. A click id is indexed once (SET NX): a later click
+// with the same id from another origin is reported as ClickDuplicate and
+// changes nothing, the same click read again is ClickRedelivered. The
+// conversion parked waiting for an indexed click is claimed and returned
+// with it.
+func (s *Store) IndexClicks(ctx context.Context, clicks []ClickRecord) ([]ClickResult, error) {
 	const op = "put clicks"
 	if len(clicks) == 0 {
 		return nil, nil
@@ -140,30 +204,54 @@ func (s *Store) PutClicks(ctx context.Context, clicks []ClickRecord) ([]Orphan, 
 		ttl := (c.Window + s.opts.ClickTTLSlack).Milliseconds()
 		calls[i] = scriptCall{
 			keys: []string{s.keys.click(c.ClickID), s.keys.orphan(c.ClickID)},
-			args: []any{encodeClick(ClickEntry{Experiment: c.Experiment, Arm: c.Arm, TS: c.TS}), ttl},
+			args: []any{encodeClick(ClickEntry{Experiment: c.Experiment, Arm: c.Arm, TS: c.TS, Origin: c.Origin}), ttl},
 		}
 	}
 	cmds, err := runPipelined(ctx, s.rdb, putClickScript, calls)
 	if err != nil {
 		return nil, redisFailure(op, fmt.Errorf("%d clicks: %w", len(clicks), err))
 	}
-	var orphans []Orphan
+	out := make([]ClickResult, len(clicks))
 	for i, cmd := range cmds {
+		id := clicks[i].ClickID
 		v, _ := cmd.Val().([]any)
-		if v == nil {
-			continue // 0: nothing parked
+		status := ""
+		if len(v) > 0 {
+			status, _ = v[0].(string)
 		}
-		h, err := flatHash(v)
+		switch status {
+		case "duplicate":
+			arg := ""
+			if len(v) > 1 {
+				arg, _ = v[1].(string)
+			}
+			e, err := decodeClick([]byte(arg))
+			if err != nil {
+				return nil, permanent(op, fmt.Errorf("click %q: %w", id, err))
+			}
+			out[i] = ClickResult{Status: ClickDuplicate, Existing: e}
+			continue
+		case "new":
+			out[i].Status = ClickNew
+		case "again":
+			out[i].Status = ClickRedelivered
+		default:
+			return nil, permanent(op, fmt.Errorf("click %q: %w: put status %q", id, ErrCorrupt, status))
+		}
+		if len(v) < 2 {
+			continue
+		}
+		h, err := flatHash(v[1])
 		if err != nil {
-			return nil, permanent(op, fmt.Errorf("click %q: orphan: %w", clicks[i].ClickID, err))
+			return nil, permanent(op, fmt.Errorf("click %q: orphan: %w", id, err))
 		}
-		o, err := parseOrphan(clicks[i].ClickID, h)
+		o, err := parseOrphan(id, h)
 		if err != nil {
-			return nil, permanent(op, fmt.Errorf("click %q: %w", clicks[i].ClickID, err))
+			return nil, permanent(op, fmt.Errorf("click %q: %w", id, err))
 		}
-		orphans = append(orphans, o)
+		out[i].Orphan = &o
 	}
-	return orphans, nil
+	return out, nil
 }
 
 // LookupConversions joins each conversion to its indexed click or parks it
@@ -282,10 +370,15 @@ func (s *Store) LookupConversions(ctx context.Context, convs []ConversionLookup)
 // dueBatch is how many due entries DueOrphans settles per round trip.
 const dueBatch = 500
 
-// DueOrphans settles the orphans parked by topic/partition whose deadline is
-// at or before watermark: it returns (and deletes) those still unclaimed,
-// for dead-lettering, and deletes the claimed ones.
-func (s *Store) DueOrphans(ctx context.Context, topic string, partition int, watermark int64) ([]Orphan, error) {
+// DueOrphans is phase one of the two-phase orphan sweep of topic/partition:
+// it marks expiring (with sweeper's name, for diagnosis) and returns every
+// parked orphan whose deadline is at or before watermark and that no click
+// claimed, together with those marked by an earlier sweep that were not
+// settled yet; it deletes the claimed ones. The caller then applies or
+// dead-letters the returned orphans (phase two) and calls SettleOrphans
+// (phase three); a crash before that makes the next sweep return them
+// again, and the conversion markers keep them from counting twice.
+func (s *Store) DueOrphans(ctx context.Context, topic string, partition int, watermark int64, sweeper string) ([]Orphan, error) {
 	const op = "due orphans"
 	if err := validPartition(topic, partition); err != nil {
 		return nil, permanent(op, err)
@@ -293,14 +386,14 @@ func (s *Store) DueOrphans(ctx context.Context, topic string, partition int, wat
 	dkey := s.keys.due(topic, partition)
 	upto := strconv.FormatInt(watermark, 10)
 	var out []Orphan
-	// Every round removes each entry it reads from the score range (it is
-	// settled, or moved to its later deadline), so rounds end; the bound
-	// only guards against a writer racing the sweep, and what is left is
-	// settled by the next call.
+	// Every round removes or moves each entry it reads from the score
+	// range, except the expiring ones it returns, which it skips over; so
+	// rounds end. The bound only guards against a writer racing the sweep;
+	// what is left is returned by the next call.
 	maxRounds := 2*s.opts.MaxParkedOrphans/dueBatch + 4
 	for range maxRounds {
 		ids, err := s.rdb.ZRangeArgs(ctx, redis.ZRangeArgs{
-			Key: dkey, Start: "-inf", Stop: upto, ByScore: true, Count: dueBatch,
+			Key: dkey, Start: "-inf", Stop: upto, ByScore: true, Offset: int64(len(out)), Count: dueBatch,
 		}).Result()
 		if err != nil {
 			return out, redisFailure(op, fmt.Errorf("%s/%d: %w", topic, partition, err))
@@ -310,7 +403,7 @@ func (s *Store) DueOrphans(ctx context.Context, topic string, partition int, wat
 		}
 		calls := make([]scriptCall, len(ids))
 		for i, id := range ids {
-			calls[i] = scriptCall{keys: []string{s.keys.orphan(id)}, args: []any{topic, partition, watermark}}
+			calls[i] = scriptCall{keys: []string{s.keys.orphan(id)}, args: []any{topic, partition, watermark, sweeper}}
 		}
 		cmds, err := runPipelined(ctx, s.rdb, sweepScript, calls)
 		if err != nil {
@@ -344,7 +437,6 @@ func (s *Store) DueOrphans(ctx context.Context, topic string, partition int, wat
 					return out, permanent(op, fmt.Errorf("orphan %q: %w", ids[i], err))
 				}
 				out = append(out, o)
-				settled = append(settled, ids[i])
 			default:
 				return out, permanent(op, fmt.Errorf("orphan %q: %w: sweep status %q", ids[i], ErrCorrupt, status))
 			}
@@ -352,14 +444,44 @@ func (s *Store) DueOrphans(ctx context.Context, topic string, partition int, wat
 		if len(settled) > 0 {
 			pipe.ZRem(ctx, dkey, settled...)
 		}
-		if _, err := pipe.Exec(ctx); err != nil {
-			return out, redisFailure(op, fmt.Errorf("%s/%d: settle: %w", topic, partition, err))
+		if pipe.Len() > 0 {
+			if _, err := pipe.Exec(ctx); err != nil {
+				return out, redisFailure(op, fmt.Errorf("%s/%d: settle: %w", topic, partition, err))
+			}
 		}
 		if len(ids) < dueBatch {
 			return out, nil
 		}
 	}
 	return out, nil
+}
+
+// SettleOrphans is phase three of the orphan sweep: it deletes the orphans
+// of clickIDs that DueOrphans returned for topic/partition and that the
+// caller has applied or dead-lettered, and their due entries. The orphan
+// goes first, so a crash in between leaves a due entry the next sweep
+// drops as gone.
+func (s *Store) SettleOrphans(ctx context.Context, topic string, partition int, clickIDs []string) error {
+	const op = "settle orphans"
+	if err := validPartition(topic, partition); err != nil {
+		return permanent(op, err)
+	}
+	if len(clickIDs) == 0 {
+		return nil
+	}
+	pipe := s.rdb.Pipeline()
+	members := make([]any, len(clickIDs))
+	for i, id := range clickIDs {
+		pipe.Del(ctx, s.keys.orphan(id))
+		members[i] = id
+	}
+	if _, err := pipe.Exec(ctx); err != nil {
+		return redisFailure(op, fmt.Errorf("%s/%d: %w", topic, partition, err))
+	}
+	if err := s.rdb.ZRem(ctx, s.keys.due(topic, partition), members...).Err(); err != nil {
+		return redisFailure(op, fmt.Errorf("%s/%d: due set: %w", topic, partition, err))
+	}
+	return nil
 }
 
 // parseOrphan reads an orphan hash (fields s, org, ts, dl, tp, pt, raw).
@@ -377,14 +499,20 @@ func parseOrphan(clickID string, h map[string]string) (Orphan, error) {
 }
 
 // encodeClick writes a click index entry: uvarint length + experiment,
-// uvarint length + arm, varint click time.
+// uvarint length + arm, varint click time, then, if the origin is known,
+// uvarint length + origin.
 func encodeClick(e ClickEntry) []byte {
-	b := make([]byte, 0, len(e.Experiment)+len(e.Arm)+12)
+	b := make([]byte, 0, len(e.Experiment)+len(e.Arm)+len(e.Origin)+14)
 	b = binary.AppendUvarint(b, uint64(len(e.Experiment)))
 	b = append(b, e.Experiment...)
 	b = binary.AppendUvarint(b, uint64(len(e.Arm)))
 	b = append(b, e.Arm...)
-	return binary.AppendVarint(b, e.TS)
+	b = binary.AppendVarint(b, e.TS)
+	if e.Origin != "" {
+		b = binary.AppendUvarint(b, uint64(len(e.Origin)))
+		b = append(b, e.Origin...)
+	}
+	return b
 }
 
 // decodeClick reads encodeClick's output.
@@ -402,8 +530,16 @@ func decodeClick(b []byte) (ClickEntry, error) {
 	exp, ok1 := str()
 	arm, ok2 := str()
 	ts, k := binary.Varint(rest)
-	if !ok1 || !ok2 || k <= 0 || k != len(rest) {
+	if !ok1 || !ok2 || k <= 0 {
 		return ClickEntry{}, fmt.Errorf("%w: click entry %q", ErrCorrupt, b)
 	}
-	return ClickEntry{Experiment: exp, Arm: arm, TS: ts}, nil
+	rest = rest[k:]
+	var org string
+	if len(rest) > 0 {
+		var ok bool
+		if org, ok = str(); !ok || len(rest) != 0 || org == "" {
+			return ClickEntry{}, fmt.Errorf("%w: click entry %q", ErrCorrupt, b)
+		}
+	}
+	return ClickEntry{Experiment: exp, Arm: arm, TS: ts, Origin: org}, nil
 }

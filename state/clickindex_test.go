@@ -83,25 +83,106 @@ func TestClickIndexJoin(t *testing.T) {
 		t.Fatalf("lookup after click: %+v %v", res, err)
 	}
 
-	// Sweep: nothing due before the deadlines; then k3 expires (returned),
-	// k2 was claimed (removed silently).
-	if got, err := s.DueOrphans(ctx, "convs", 0, t0+199); err != nil || len(got) != 0 {
+	// Sweep: nothing due before the deadlines; then k3 expires (returned,
+	// marked), k2 was claimed (removed silently). Until it is settled, k3
+	// comes back from every sweep (a sweeper that crashed before settling
+	// loses nothing), even one at an earlier watermark, and a late click
+	// does not claim it.
+	if got, err := s.DueOrphans(ctx, "convs", 0, t0+199, "test"); err != nil || len(got) != 0 {
 		t.Fatalf("early sweep: %v %v", got, err)
 	}
-	got, err := s.DueOrphans(ctx, "convs", 0, t0+1000)
+	for i, wm := range []int64{t0 + 1000, t0 + 1000, t0 + 450} {
+		got, err := s.DueOrphans(ctx, "convs", 0, wm, "test")
+		if err != nil {
+			t.Fatal(err)
+		}
+		if len(got) != 1 || got[0].ClickID != "k3" || got[0].Origin != "convs/0/3" || string(got[0].Raw) != "raw:convs/0/3" || got[0].Claimed {
+			t.Fatalf("sweep %d returned %+v, want k3 unclaimed", i, got)
+		}
+		if i == 0 {
+			res, err := s.IndexClicks(ctx, []ClickRecord{{ClickID: "k3", Experiment: "e", Arm: "red", TS: t0, Window: window, Origin: "clicks/0/7"}})
+			if err != nil || res[0].Status != ClickNew || res[0].Orphan != nil {
+				t.Fatalf("late click of an expiring orphan: %+v %v", res, err)
+			}
+		}
+	}
+	if n, _ := rdb.Exists(ctx, s.keys.orphan("k2")).Result(); n != 0 {
+		t.Errorf("claimed orphan k2 still exists after the sweep")
+	}
+	if err := s.SettleOrphans(ctx, "convs", 0, []string{"k3"}); err != nil {
+		t.Fatal(err)
+	}
+	for _, k := range []string{s.keys.orphan("k3"), s.keys.due("convs", 0)} {
+		if n, _ := rdb.Exists(ctx, k).Result(); n != 0 {
+			t.Errorf("%s still exists after settling", k)
+		}
+	}
+	if got, err := s.DueOrphans(ctx, "convs", 0, t0+1000, "test"); err != nil || len(got) != 0 {
+		t.Fatalf("sweep after settling: %v %v", got, err)
+	}
+}
+
+// TestIndexClicksOnce checks that a click id is indexed once: the same
+// click read again is a redelivery (and claims its orphan again), another
+// click with the id is a duplicate that changes nothing.
+func TestIndexClicksOnce(t *testing.T) {
+	s, _, _ := newStore(t, Options{})
+	ctx := testCtx(t)
+	rec := func(arm, origin string, ts int64) ClickRecord {
+		return ClickRecord{ClickID: "d1", Experiment: "e", Arm: arm, TS: ts, Window: time.Hour, Origin: origin}
+	}
+	if _, err := s.LookupConversions(ctx, []ConversionLookup{{ClickID: "d1", TS: t0 + 10, Origin: "convs/0/4", Topic: "convs", Partition: 0, Deadline: t0 + 99}}); err != nil {
+		t.Fatal(err)
+	}
+	res, err := s.IndexClicks(ctx, []ClickRecord{
+		rec("red", "clicks/0/1", t0),
+		rec("red", "clicks/0/1", t0),    // the same message twice in a batch
+		rec("blue", "clicks/1/5", t0+5), // another click with the id
+		rec("red", "clicks/0/2", t0),    // same content, other origin
+	})
 	if err != nil {
 		t.Fatal(err)
 	}
-	if len(got) != 1 || got[0].ClickID != "k3" || got[0].Origin != "convs/0/3" || string(got[0].Raw) != "raw:convs/0/3" || got[0].Claimed {
-		t.Fatalf("sweep returned %+v, want k3 unclaimed", got)
-	}
-	for _, k := range []string{s.keys.orphan("k2"), s.keys.orphan("k3"), s.keys.due("convs", 0)} {
-		if n, _ := rdb.Exists(ctx, k).Result(); n != 0 {
-			t.Errorf("%s still exists after the sweep", k)
+	first := ClickEntry{Experiment: "e", Arm: "red", TS: t0, Origin: "clicks/0/1"}
+	want := []ClickStatus{ClickNew, ClickRedelivered, ClickDuplicate, ClickDuplicate}
+	for i, r := range res {
+		if r.Status != want[i] {
+			t.Errorf("click %d: status %v, want %v", i, r.Status, want[i])
+		}
+		if r.Status == ClickDuplicate && r.Existing != first {
+			t.Errorf("click %d: existing %+v, want %+v", i, r.Existing, first)
+		}
+		if hasOrphan := r.Orphan != nil; hasOrphan != (i < 2) {
+			t.Errorf("click %d: orphan %+v", i, r.Orphan)
 		}
 	}
-	if got, err := s.DueOrphans(ctx, "convs", 0, t0+1000); err != nil || len(got) != 0 {
-		t.Fatalf("second sweep: %v %v", got, err)
+	if res[0].Orphan.Claimed || !res[1].Orphan.Claimed {
+		t.Errorf("claimed flags %v %v, want false then true", res[0].Orphan.Claimed, res[1].Orphan.Claimed)
+	}
+	lk, err := s.LookupConversions(ctx, []ConversionLookup{{ClickID: "d1", TS: t0 + 10, Origin: "convs/0/9", Topic: "convs", Partition: 0, Deadline: t0 + 99}})
+	if err != nil || lk[0].Status != LookupFound || lk[0].Click != first {
+		t.Fatalf("lookup after duplicates: %+v %v", lk, err)
+	}
+}
+
+// TestClickEntryEncoding round-trips entries with and without an origin
+// and refuses truncated or padded ones.
+func TestClickEntryEncoding(t *testing.T) {
+	for _, e := range []ClickEntry{
+		{Experiment: "e", Arm: "a", TS: t0},
+		{Experiment: "spring-sale", Arm: "arm-b", TS: -5, Origin: "clicks/3/123456"},
+	} {
+		b := encodeClick(e)
+		got, err := decodeClick(b)
+		if err != nil || got != e {
+			t.Errorf("round trip of %+v: %+v %v", e, got, err)
+		}
+		if _, err := decodeClick(append(b, 7)); err == nil {
+			t.Errorf("%+v with a trailing byte decoded", e)
+		}
+		if _, err := decodeClick(b[:len(b)-1]); err == nil && e.Origin != "" {
+			t.Errorf("%+v truncated decoded", e)
+		}
 	}
 }
 
@@ -131,8 +212,12 @@ func TestOrphanCap(t *testing.T) {
 	if res[0].Status != LookupCapExceeded {
 		t.Fatalf("next batch: %v, want cap exceeded", res[0].Status)
 	}
-	if exp, err := s.DueOrphans(ctx, "convs", 0, t0); err != nil || len(exp) != 2 {
+	exp, err := s.DueOrphans(ctx, "convs", 0, t0, "test")
+	if err != nil || len(exp) != 2 {
 		t.Fatalf("sweep: %d %v", len(exp), err)
+	}
+	if err := s.SettleOrphans(ctx, "convs", 0, []string{exp[0].ClickID, exp[1].ClickID}); err != nil {
+		t.Fatal(err)
 	}
 	res, _ = s.LookupConversions(ctx, convs[2:3])
 	if res[0].Status != LookupParked {

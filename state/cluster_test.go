@@ -49,7 +49,7 @@ func TestClusterClient(t *testing.T) {
 	if err != nil || len(orphans) != 1 || orphans[0].ClickID != "q1" {
 		t.Fatalf("put clicks: %+v %v", orphans, err)
 	}
-	due, err := s.DueOrphans(ctx, "convs", 0, t0)
+	due, err := s.DueOrphans(ctx, "convs", 0, t0, "test")
 	if err != nil || len(due) != 1 || due[0].ClickID != "q2" {
 		t.Fatalf("due orphans: %+v %v", due, err)
 	}

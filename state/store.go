@@ -203,3 +203,56 @@ func (s *Store) LatestAllocation(ctx context.Context, experiment string) (seq in
 	}
 	return seq, []byte(alloc), nil
 }
+
+// fence is the fencing base of a consumer group (see FencingBase).
+func (k keys) fence(group string) string { return k.prefix + ":fence:" + group }
+
+// FencingBase returns the fencing base of consumer group: a number the
+// consumers add to Kafka generation ids to form the writer epoch recorded
+// with applied offsets (0 unless ResetFencing raised it).
+func (s *Store) FencingBase(ctx context.Context, group string) (int32, error) {
+	v, err := s.rdb.Get(ctx, s.keys.fence(group)).Int64()
+	switch {
+	case errors.Is(err, redis.Nil):
+		return 0, nil
+	case err != nil:
+		return 0, redisFailure("fencing base", fmt.Errorf("group %q: %w", group, err))
+	}
+	return int32(v), nil
+}
+
+// ResetFencing raises the fencing base of group so that generation gen's
+// epoch (base + gen) exceeds every generation recorded with the applied
+// offsets of any experiment, and returns the new base. It is for a
+// consumer group that was recreated, whose generation ids restarted below
+// the recorded ones, so that every write would be refused as fenced. The
+// risk: a writer that really is stale (a consumer of the old group still
+// running, or another deployment sharing the prefix) is no longer fenced
+// off, and its writes could count events twice; stop them first. The base
+// never decreases.
+func (s *Store) ResetFencing(ctx context.Context, group string, gen int32) (int32, error) {
+	const op = "reset fencing"
+	ids, err := s.Experiments(ctx)
+	if err != nil {
+		return 0, err
+	}
+	var top int32
+	for _, id := range ids {
+		offs, err := s.Offsets(ctx, id)
+		if err != nil {
+			return 0, err
+		}
+		for _, o := range offs {
+			top = max(top, o.Generation)
+		}
+	}
+	cur, err := s.FencingBase(ctx, group)
+	if err != nil {
+		return 0, err
+	}
+	base := max(cur, top+1-gen, 0)
+	if err := s.rdb.Set(ctx, s.keys.fence(group), int64(base), 0).Err(); err != nil {
+		return 0, redisFailure(op, fmt.Errorf("group %q: %w", group, err))
+	}
+	return base, nil
+}

@@ -36,11 +36,15 @@ commits and exits within shutdown_timeout.`,
 		Args: cobra.NoArgs,
 	}
 	flags := consumer.BindFlags(cmd.Flags())
+	resetFencing := cmd.Flags().Bool("reset-fencing", false,
+		"raise the fencing base above every stored generation once (after the consumer group was deleted and recreated); "+
+			"a still-running instance of the old group could then write stale deltas")
 	cmd.RunE = func(cmd *cobra.Command, _ []string) error {
 		cfg, err := consumer.LoadConfig("", os.LookupEnv, flags)
 		if err != nil {
 			return &exitError{code: 2, err: err}
 		}
+		cfg.Pipeline.ResetFencing = *resetFencing
 		log, err := consumer.NewLogger(cfg.Log)
 		if err != nil {
 			return &exitError{code: 2, err: err}

@@ -12,8 +12,11 @@
 -- ARGV[4] marker TTL in ms; ARGV[5] R, the number of ranges, followed by R
 -- triples (offsets field "<topic>/<partition>", first offset, last offset);
 -- then A, the number of arms, and per arm: name, F, C, then F pairs
--- (field, increment) and C quadruples (origin, bucket field "v:<l>:<i>" or
--- "mv", delay field "d:<bin>", delay ms).
+-- (field, increment) and C quintuples (origin, bucket field "v:<l>:<i>" or
+-- "mv", delay field "d:<bin>", delay ms, click field "b:<l>:<i>" or "mc" of
+-- a click that counts with the conversion, or "" for none). A click that
+-- comes with its conversion (self-attributed) is guarded by the conversion
+-- marker like the conversion itself, so a re-read counts neither twice.
 --
 -- Reply, first element a status:
 --   {"fenced", field, stored generation}  a range's partition has a newer owner
@@ -23,7 +26,9 @@
 --   {"applied", counted, redelivered, i1, origin1, i2, origin2, ...}
 --     with (i, origin) for every duplicate conversion: its 1-based position
 --     among the delta's conversions and the origin that was counted.
--- Nothing is written unless the status is "applied".
+-- Nothing is written unless the status is "applied". A delta with no
+-- ranges (R = 0) carries only conversions, each guarded by its marker; it is
+-- always applied.
 
 local gen = tonumber(ARGV[3])
 local nr = tonumber(ARGV[5])
@@ -67,7 +72,7 @@ for r = 1, nr do
     fresh = fresh + 1
   end
 end
-if fresh == 0 then
+if fresh == 0 and nr > 0 then
   return {'skipped'}
 end
 if first_applied then
@@ -96,11 +101,14 @@ for a = 1, na do
   for c = 1, nc do
     ci = ci + 1
     local mkey = KEYS[3 + na + ci]
-    local origin, bfield, dfield, dms = ARGV[pos], ARGV[pos + 1], ARGV[pos + 2], ARGV[pos + 3]
-    pos = pos + 4
+    local origin, bfield, dfield, dms, cfield = ARGV[pos], ARGV[pos + 1], ARGV[pos + 2], ARGV[pos + 3], ARGV[pos + 4]
+    pos = pos + 5
     local prev = redis.call('GET', mkey)
     if not prev then
       redis.call('SET', mkey, origin, 'PX', ttl)
+      if cfield ~= '' then
+        redis.call('HINCRBY', akey, cfield, 1)
+      end
       redis.call('HINCRBY', akey, bfield, 1)
       redis.call('HINCRBY', akey, dfield, 1)
       redis.call('HINCRBY', akey, 'dn', 1)

@@ -23,6 +23,8 @@ import (
 type publication struct {
 	weights map[string]float64
 	asOf    int64 // event time of the evaluation, Unix ms
+	seq     int64
+	body    []byte // the stored report JSON
 }
 
 // Allocation is the message published to the allocation topic (key: the
@@ -49,35 +51,79 @@ func withSeq(body []byte, seq int64) ([]byte, error) {
 	return append(out, body[1:]...), nil
 }
 
-// maybeRefit refits the experiments changed since the last refit when the
-// watermark crossed a RefitEvery boundary.
-func (s *Service) maybeRefit(ctx context.Context, wm int64) error {
-	s.mu.Lock()
-	tick, ok := s.refitTick.due(wm)
-	s.mu.Unlock()
+// refitOwned runs, for every click partition this generation owns, the
+// refits of the ticks after the last one its owner completed, up to the
+// last tick the whole group applied its events through, and records each
+// completed tick. A click partition never marked before (a fresh prefix:
+// nothing was applied, every event is held back) is marked at the current
+// tick without refits.
+func (g *genState) refitOwned(ctx context.Context, prog map[string]map[int]state.PartitionProgress) error {
+	s := g.s
+	cfg := s.config()
+	period := cfg.Pipeline.RefitEvery.Milliseconds()
+	through, ok := g.times.refitThrough(period)
 	if !ok {
 		return nil
 	}
-	ids := s.changedExperiments()
-	slices.Sort(ids)
-	for _, id := range ids {
-		if err := s.refit(ctx, id, max(tick, wm)); err != nil {
-			if ctx.Err() != nil {
-				s.markChanged(id)
+	var ids []string
+	for _, tp := range g.assigned {
+		if tp.Topic != g.meta.clickTopic {
+			continue
+		}
+		last := noTime
+		if rec, ok := prog[tp.Topic][tp.Partition]; ok {
+			last = rec.Refitted
+		}
+		if last == noTime {
+			if err := s.retry(ctx, "mark refitted", func(ctx context.Context) error {
+				return s.store.MarkRefitted(ctx, tp.Topic, tp.Partition, through)
+			}); err != nil {
 				return err
 			}
-			// A bad fit must not stop consumption; the next tick retries.
-			s.log.Error("refit", zap.String("experiment", id), zap.Error(err))
-			s.markChanged(id)
+			continue
+		}
+		for tick := last + period; tick <= through; tick += period {
+			if ids == nil {
+				if err := s.retry(ctx, "list experiments", func(ctx context.Context) error {
+					var err error
+					ids, err = s.store.Experiments(ctx)
+					return err
+				}); err != nil {
+					return err
+				}
+			}
+			for _, id := range ids {
+				if refitPartition(id, g.meta.clickParts) != tp.Partition {
+					continue
+				}
+				if err := s.refit(ctx, id, tick); err != nil {
+					if ctx.Err() != nil {
+						return err
+					}
+					// A bad fit must not stop consumption (nor the
+					// group's barrier); the next tick tries again.
+					s.log.Error("refit", zap.String("experiment", id), zap.Int64("tick", tick), zap.Error(err))
+				}
+			}
+			if err := s.retry(ctx, "mark refitted", func(ctx context.Context) error {
+				return s.store.MarkRefitted(ctx, tp.Topic, tp.Partition, tick)
+			}); err != nil {
+				return err
+			}
 		}
 	}
 	return nil
 }
 
-// refit loads one experiment, evaluates it as of asOf and publishes its
+// refit loads one experiment, evaluates it as of tick (cold-started, so
+// that the result depends on the stored state alone) and publishes its
 // allocation when a weight moved by more than PublishThreshold or
-// PublishEvery elapsed (in event time) since the last publication.
-func (s *Service) refit(ctx context.Context, id string, asOf int64) error {
+// PublishEvery elapsed (in event time) since the last publication, read
+// from Redis. A tick already published (a refit redone after a crash) is
+// not evaluated again; its stored allocation is written to the topic once
+// more, unless this instance wrote it, so that none is lost (readers keep
+// the highest seq).
+func (s *Service) refit(ctx context.Context, id string, tick int64) error {
 	cfg := s.config()
 	ec := cfg.ExperimentFor(id)
 	if ec.Ended {
@@ -89,10 +135,15 @@ func (s *Service) refit(ctx context.Context, id string, asOf int64) error {
 		var err error
 		ex, err = s.store.Load(ctx, id)
 		return err
-	}); err != nil {
+	}); errors.Is(err, state.ErrNotFound) {
+		return nil
+	} else if err != nil {
 		return err
 	}
-	asOf = max(asOf, ex.Watermark)
+	if len(ex.Arms) == 0 {
+		return nil
+	}
+	asOf := max(tick, ex.Watermark)
 	alloc, err := ec.AllocationOptions()
 	if err != nil {
 		return fmt.Errorf("experiment %q settings: %w", id, err)
@@ -101,16 +152,12 @@ func (s *Service) refit(ctx context.Context, id string, asOf int64) error {
 	if err != nil {
 		return fmt.Errorf("experiment %q settings: %w", id, err)
 	}
-	s.mu.Lock()
-	warm := s.warm[id]
-	prev, havePrev := s.published[id]
-	s.mu.Unlock()
-	if !havePrev {
-		p, ok, err := s.loadPublication(ctx, id)
-		if err != nil {
-			return err
-		}
-		prev, havePrev = p, ok
+	prev, havePrev, err := s.loadPublication(ctx, id)
+	if err != nil {
+		return err
+	}
+	if havePrev && prev.asOf >= asOf {
+		return s.republish(ctx, id, prev)
 	}
 	in := estimator.ExperimentInput{
 		Experiment: id, AsOf: asOf,
@@ -120,7 +167,7 @@ func (s *Service) refit(ctx context.Context, id string, asOf int64) error {
 	for _, arm := range ex.Arms {
 		st := ex.States[arm].Clone()
 		st.Advance(asOf)
-		in.Arms = append(in.Arms, estimator.ArmData{Arm: arm, State: st, Paused: slices.Contains(ec.Paused, arm), Warm: warm[arm]})
+		in.Arms = append(in.Arms, estimator.ArmData{Arm: arm, State: st, Paused: slices.Contains(ec.Paused, arm)})
 	}
 	if havePrev {
 		in.PrevWeights = make([]float64, len(in.Arms))
@@ -141,20 +188,34 @@ func (s *Service) refit(ctx context.Context, id string, asOf int64) error {
 	if err != nil {
 		return fmt.Errorf("evaluate experiment %q: %w", id, err)
 	}
-	fits := map[string]*estimator.Fit{}
-	for i, a := range in.Arms {
-		if i < len(rep.Fits) && rep.Fits[i] != nil {
-			fits[a.Arm] = rep.Fits[i]
-		}
-	}
-	s.mu.Lock()
-	s.warm[id] = fits
-	s.mu.Unlock()
-
 	if havePrev && !moved(prev.weights, rep.Weights, cfg.Pipeline.PublishThreshold) && asOf-prev.asOf < cfg.Pipeline.PublishEvery.Milliseconds() {
 		return nil
 	}
 	return s.publish(ctx, id, asOf, rep)
+}
+
+// republish writes the stored allocation prev to the allocation topic
+// again unless this instance wrote it.
+func (s *Service) republish(ctx context.Context, id string, prev publication) error {
+	s.mu.Lock()
+	mine := s.published[id] == prev.seq
+	s.mu.Unlock()
+	if mine {
+		return nil
+	}
+	msg, err := withSeq(prev.body, prev.seq)
+	if err != nil {
+		return fmt.Errorf("allocation of %q: %w", id, err)
+	}
+	if err := s.retry(ctx, "publish allocation", func(ctx context.Context) error {
+		return s.alloc.WriteMessages(ctx, kafka.Message{Key: []byte(id), Value: msg})
+	}); err != nil {
+		return err
+	}
+	s.mu.Lock()
+	s.published[id] = prev.seq
+	s.mu.Unlock()
+	return nil
 }
 
 // moved reports whether any weight differs by more than threshold, or the
@@ -192,13 +253,20 @@ func (s *Service) publish(ctx context.Context, id string, asOf int64, rep estima
 	if err != nil {
 		return fmt.Errorf("allocation of %q: %w", id, err)
 	}
+	// The history feeds `ripen report`; a retried append may leave a
+	// duplicate, which readers drop by seq.
+	if err := s.retry(ctx, "append history", func(ctx context.Context) error {
+		return s.store.AppendHistory(ctx, id, msg)
+	}); err != nil {
+		return err
+	}
 	if err := s.retry(ctx, "publish allocation", func(ctx context.Context) error {
 		return s.alloc.WriteMessages(ctx, kafka.Message{Key: []byte(id), Value: msg})
 	}); err != nil {
 		return err
 	}
 	s.mu.Lock()
-	s.published[id] = publication{weights: rep.Weights, asOf: asOf}
+	s.published[id] = seq
 	s.mu.Unlock()
 	if s.metrics != nil {
 		s.metrics.AllocationsPublished.Inc()
@@ -208,12 +276,14 @@ func (s *Service) publish(ctx context.Context, id string, asOf int64, rep estima
 }
 
 // loadPublication reads the last saved allocation of an experiment, so
-// that a restarted service keeps the guardrails and publish schedule.
+// that whichever instance refits it keeps the guardrails and publish
+// schedule.
 func (s *Service) loadPublication(ctx context.Context, id string) (publication, bool, error) {
 	var body []byte
+	var seq int64
 	err := s.retry(ctx, "latest allocation", func(ctx context.Context) error {
 		var err error
-		_, body, err = s.store.LatestAllocation(ctx, id)
+		seq, body, err = s.store.LatestAllocation(ctx, id)
 		if errors.Is(err, state.ErrNotFound) {
 			body = nil
 			return nil
@@ -232,5 +302,5 @@ func (s *Service) loadPublication(ctx context.Context, id string) (publication, 
 	if err != nil {
 		return publication{}, false, nil
 	}
-	return publication{weights: rep.Weights, asOf: t.UnixMilli()}, true, nil
+	return publication{weights: rep.Weights, asOf: t.UnixMilli(), seq: seq, body: body}, true, nil
 }

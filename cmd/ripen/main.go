@@ -31,7 +31,8 @@ func newRootCmd() *cobra.Command {
 		SilenceUsage:  true,
 		SilenceErrors: true,
 	}
-	root.AddCommand(newFitCmd(), newSimulateCmd(), newRunCmd(), newDevbrokerCmd(), newStateCmd(), newInspectCmd())
+	root.AddCommand(newFitCmd(), newSimulateCmd(), newRunCmd(), newDevbrokerCmd(), newStateCmd(), newInspectCmd(),
+		newBenchCmd(), newDemoCmd(), newReportCmd())
 	return root
 }
 

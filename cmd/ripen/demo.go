@@ -695,7 +695,7 @@ func (g *demoGenerator) chunk(target int64, weights []float64) (clicks, convs []
 	for {
 		t := g.arrival()
 		due(min(t+1, target))
-		arm := pickArm(weights, g.r.Float64())
+		arm := sim.PickArm(weights, g.r.Float64())
 		g.n++
 		id := fmt.Sprintf("qm-%07d", g.n)
 		ts := sim.Start + t
@@ -726,24 +726,6 @@ func message(key string, v json.Marshaler) kafka.Message {
 		panic(fmt.Sprintf("encode demo event: %v", err)) // plain structs always encode
 	}
 	return kafka.Message{Key: []byte(key), Value: b}
-}
-
-// pickArm returns the arm that uniform u selects under weights w (inverse
-// CDF; the last positive-weight arm absorbs rounding).
-func pickArm(w []float64, u float64) int {
-	last := 0
-	var acc float64
-	for i, x := range w {
-		if x <= 0 {
-			continue
-		}
-		last = i
-		acc += x
-		if u < acc {
-			return i
-		}
-	}
-	return last
 }
 
 // pendingConv is a conversion waiting for its event time.

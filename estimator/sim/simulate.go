@@ -323,7 +323,7 @@ func (c *compiled) simulate(ctx context.Context, alloc estimator.AllocationOptio
 		}
 		end := min(step*c.updateMs, c.horizonMs)
 		for ; cl != nil && cl.t < end; cl = st.next() {
-			a := pick(weights, cl.uArm)
+			a := PickArm(weights, cl.uArm)
 			best := slices.Max(cl.q)
 			regret += best - cl.q[a]
 			if cl.q[a] == best {

@@ -151,9 +151,9 @@ func (s *stream) next() *click {
 	return cl
 }
 
-// pick returns the arm that uniform u selects under weights w (inverse
-// CDF; the last positive-weight arm absorbs rounding).
-func pick(w []float64, u float64) int {
+// PickArm returns the arm that uniform u in [0, 1) selects under weights w
+// (inverse CDF; the last positive-weight arm absorbs rounding).
+func PickArm(w []float64, u float64) int {
 	last := 0
 	var acc float64
 	for i, x := range w {

@@ -89,7 +89,7 @@ func TestStreamConversions(t *testing.T) {
 	total := 0
 	for cl := s.next(); cl != nil; cl = s.next() {
 		total++
-		a := pick(uniform, cl.uArm)
+		a := PickArm(uniform, cl.uArm)
 		clicks[a]++
 		if d := cl.delay[a]; d >= 0 {
 			delays[a] = append(delays[a], float64(d)/1000)

@@ -29,7 +29,24 @@ type Deps struct {
 	// Refit evaluates experiments on refit ticks. Default:
 	// estimator.EvaluateExperiment.
 	Refit RefitFunc
+	// NoAllocationTopic keeps allocations off the allocation topic; they
+	// are still computed, stored and appended to the history (a replay).
+	// Default: false (publish).
+	NoAllocationTopic bool
+	// NoDeadLetterTopic keeps dead letters off the dead-letter topic; they
+	// are still counted (a replay, whose dead letters the live service
+	// wrote already). Default: false (write them).
+	NoDeadLetterTopic bool
+	// FixedPrefix keeps the Store's prefix instead of following the live
+	// prefix pointer under it (see state.LiveKey). Default: false (follow).
+	FixedPrefix bool
+	// LiveCheckEvery is how often the live prefix pointer is read.
+	// Default: 2s.
+	LiveCheckEvery time.Duration
 }
+
+// DefaultLiveCheckEvery is the default of Deps.LiveCheckEvery.
+const DefaultLiveCheckEvery = 2 * time.Second
 
 // Retry backoff for Redis and Kafka writes: doubling from backoffMin up to
 // backoffMax.
@@ -69,7 +86,10 @@ type Service struct {
 	cfgMu sync.RWMutex
 	cfg   Config
 
-	store       *state.Store
+	store       *state.Store // the live prefix's store; replaced only between consumer-group sessions (see consumeLive)
+	root        *state.Store // the configured prefix, holder of the live pointer
+	follow      bool
+	liveEvery   time.Duration
 	log         *zap.Logger
 	metrics     *Metrics
 	refitFn     RefitFunc
@@ -124,6 +144,9 @@ func New(cfg Config, deps Deps) (*Service, error) {
 	if deps.Refit == nil {
 		deps.Refit = estimator.EvaluateExperiment
 	}
+	if deps.LiveCheckEvery <= 0 {
+		deps.LiveCheckEvery = DefaultLiveCheckEvery
+	}
 	transport, err := KafkaTransport(cfg.Kafka)
 	if err != nil {
 		return nil, fmt.Errorf("new service: %w", err)
@@ -131,6 +154,9 @@ func New(cfg Config, deps Deps) (*Service, error) {
 	s := &Service{
 		cfg:       cfg,
 		store:     deps.Store,
+		root:      deps.Store,
+		follow:    !deps.FixedPrefix,
+		liveEvery: deps.LiveCheckEvery,
 		log:       deps.Logger,
 		metrics:   deps.Metrics,
 		refitFn:   deps.Refit,
@@ -140,6 +166,12 @@ func New(cfg Config, deps Deps) (*Service, error) {
 	}
 	s.deadLetters = &deadLetters{w: newWriter(cfg.Kafka, cfg.Kafka.DeadLetterTopic, transport), metrics: deps.Metrics}
 	s.alloc = newWriter(cfg.Kafka, cfg.Kafka.AllocationTopic, transport)
+	if deps.NoDeadLetterTopic {
+		s.deadLetters.w = discardWriter{}
+	}
+	if deps.NoAllocationTopic {
+		s.alloc = discardWriter{}
+	}
 	return s, nil
 }
 
@@ -208,7 +240,7 @@ func (s *Service) Run(ctx context.Context) error {
 		stopCtl()
 		wg.Wait()
 	}()
-	err := s.consume(ctx, cfg)
+	err := s.consumeLive(ctx, cfg)
 	if errors.Is(err, errCrash) {
 		return err
 	}
@@ -343,7 +375,7 @@ func (s *Service) Ready(ctx context.Context) error {
 
 // Experiments lists the experiments with stored state.
 func (s *Service) Experiments(ctx context.Context) ([]string, error) {
-	ids, err := s.store.Experiments(ctx)
+	ids, err := s.currentStore().Experiments(ctx)
 	if err != nil {
 		return nil, fmt.Errorf("experiments: %w", err)
 	}
@@ -353,7 +385,7 @@ func (s *Service) Experiments(ctx context.Context) ([]string, error) {
 // LatestAllocation returns the experiment's latest allocation message as
 // published (JSON with its seq), and false if none was published.
 func (s *Service) LatestAllocation(ctx context.Context, experiment string) ([]byte, bool, error) {
-	seq, body, err := s.store.LatestAllocation(ctx, experiment)
+	seq, body, err := s.currentStore().LatestAllocation(ctx, experiment)
 	if errors.Is(err, state.ErrNotFound) {
 		return nil, false, nil
 	}

@@ -32,7 +32,7 @@ func newRootCmd() *cobra.Command {
 		SilenceErrors: true,
 	}
 	root.AddCommand(newFitCmd(), newSimulateCmd(), newRunCmd(), newDevbrokerCmd(), newStateCmd(), newInspectCmd(),
-		newBenchCmd(), newDemoCmd(), newReportCmd())
+		newBenchCmd(), newDemoCmd(), newReportCmd(), newReplayCmd())
 	return root
 }
 

@@ -2,6 +2,7 @@ package consumer
 
 import (
 	"slices"
+	"sort"
 	"strconv"
 
 	"ripen/estimator"
@@ -20,6 +21,17 @@ type fetched struct {
 	// message that does not decode (it is dead-lettered, never held back).
 	ts    int64
 	hasTS bool
+	// dec is the event as receive decoded it, so that flush does not
+	// decode it again; nil if it was not decoded yet.
+	dec *decoded
+}
+
+// decoded is a message decoded by its topic: click or conv is set, or err
+// says why it does not decode.
+type decoded struct {
+	click Click
+	conv  Conversion
+	err   error
 }
 
 // origin names a message as "<topic>/<partition>/<offset>".
@@ -51,6 +63,32 @@ func (b *batch) add(m fetched) {
 }
 
 func (b *batch) len() int { return len(b.msgs) }
+
+// value returns the bytes of the batch's message at offset of tp (for a
+// dead letter). release adds each partition's messages as one run in
+// offset order, so a binary search in the run finds it; a batch built
+// otherwise is searched through.
+func (b *batch) value(tp state.TopicPartition, offset int64) ([]byte, bool) {
+	r := b.ranges[tp]
+	if r == nil || offset < r.From || offset > r.To {
+		return nil, false
+	}
+	if i := slices.IndexFunc(b.msgs, func(m fetched) bool { return m.tp == tp }); i >= 0 {
+		j := i + sort.Search(len(b.msgs)-i, func(k int) bool {
+			n := b.msgs[i+k]
+			return n.tp != tp || n.offset >= offset
+		})
+		if j < len(b.msgs) && b.msgs[j].tp == tp && b.msgs[j].offset == offset {
+			return b.msgs[j].value, true
+		}
+	}
+	for _, m := range b.msgs {
+		if m.tp == tp && m.offset == offset {
+			return m.value, true
+		}
+	}
+	return nil, false
+}
 
 // expInfo is what a generation caches about one experiment: its layout, its
 // arms and the offsets already applied to it per partition.
@@ -104,10 +142,10 @@ func (b *deltaBuilder) touch(e *expInfo) {
 	b.exps[e.id] = e
 }
 
-// click adds one click made at ts, read at offset of tp.
-func (b *deltaBuilder) click(e *expInfo, arm string, tp state.TopicPartition, offset, ts int64) {
+// click adds one click made at ts, read at offset of tp (origin org).
+func (b *deltaBuilder) click(e *expInfo, arm string, tp state.TopicPartition, offset int64, org string, ts int64) {
 	b.touch(e)
-	b.contribs[e.id] = append(b.contribs[e.id], contrib{arm: arm, tp: tp, offset: offset, origin: origin(tp, offset), clickTS: ts})
+	b.contribs[e.id] = append(b.contribs[e.id], contrib{arm: arm, tp: tp, offset: offset, origin: org, clickTS: ts})
 }
 
 // conversion adds one conversion read at origin of the click clickID made

@@ -125,8 +125,9 @@ func partitionHoldCap(cfg Config, partitions int) int {
 
 // clickEvent and convEvent are decoded events with where they were read.
 type clickEvent struct {
-	m fetched
-	c Click
+	m   fetched
+	c   Click
+	org string // origin(m.tp, m.offset)
 }
 
 type convEvent struct {
@@ -144,13 +145,17 @@ type flushResult struct {
 func (g *genState) receive(m fetched, cfg Config, now time.Time) {
 	switch m.tp.Topic {
 	case cfg.Kafka.ClickTopic:
-		if c, err := DecodeClick(m.value); err == nil {
-			m.ts, m.hasTS = c.TS, true
+		d := &decoded{}
+		if d.click, d.err = DecodeClick(m.value); d.err == nil {
+			m.ts, m.hasTS = d.click.TS, true
 		}
+		m.dec = d
 	case cfg.Kafka.ConversionTopic:
-		if v, err := DecodeConversion(m.value); err == nil {
-			m.ts, m.hasTS = v.TS, true
+		d := &decoded{}
+		if d.conv, d.err = DecodeConversion(m.value); d.err == nil {
+			m.ts, m.hasTS = d.conv.TS, true
 		}
+		m.dec = d
 	}
 	p := g.own[m.tp]
 	if p == nil {
@@ -237,38 +242,59 @@ func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 	s := g.s
 	start := time.Now()
 	cfg := s.config()
-	raw := map[string][]byte{} // original bytes by origin, for dead letters
+	// Original bytes of the parked conversions that clicks claim, by
+	// origin; those of the batch's messages are found in the batch. For
+	// dead letters.
+	raw := map[string][]byte{}
+	rawOf := func(org string) []byte {
+		if v, ok := raw[org]; ok {
+			return v
+		}
+		if tp, off, err := parseOrigin(org); err == nil {
+			if v, ok := b.value(tp, off); ok {
+				return v
+			}
+		}
+		return nil
+	}
 	var dls []DeadLetter
 	refuse := func(org string, rej *RejectError) {
-		dls = append(dls, s.deadLetter(org, raw[org], rej))
+		dls = append(dls, s.deadLetter(org, rawOf(org), rej))
 	}
 
-	var clicks []clickEvent
+	clicks := make([]clickEvent, 0, len(b.msgs))
 	var convs []convEvent
 	fallback := int64(math.MaxInt64)
+	consumed := map[string]int{} // messages per topic, for the metric
 	for _, m := range b.msgs {
-		org := origin(m.tp, m.offset)
-		raw[org] = m.value
-		if s.metrics != nil {
-			s.metrics.EventsConsumed.WithLabelValues(m.tp.Topic).Inc()
-		}
+		consumed[m.tp.Topic]++
 		var rej *RejectError
 		switch m.tp.Topic {
 		case cfg.Kafka.ClickTopic:
-			c, err := DecodeClick(m.value)
-			if errors.As(err, &rej) {
+			d := m.dec
+			if d == nil {
+				d = &decoded{}
+				d.click, d.err = DecodeClick(m.value)
+			}
+			if errors.As(d.err, &rej) {
 				break
 			}
+			c := d.click
 			if rej = checkStorable(c.Experiment); rej != nil {
 				break
 			}
 			fallback = min(fallback, c.TS)
-			clicks = append(clicks, clickEvent{m, c})
+			clicks = append(clicks, clickEvent{m: m, c: c, org: origin(m.tp, m.offset)})
 		case cfg.Kafka.ConversionTopic:
-			v, err := DecodeConversion(m.value)
-			if errors.As(err, &rej) {
+			d := m.dec
+			if d == nil {
+				d = &decoded{}
+				d.conv, d.err = DecodeConversion(m.value)
+			}
+			if errors.As(d.err, &rej) {
 				break
 			}
+			v := d.conv
 			if v.Experiment != "" {
 				if rej = checkStorable(v.Experiment); rej != nil {
 					break
@@ -280,7 +306,12 @@ func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 			rej = reject(ReasonMalformedJSON, "message from unexpected topic %q", m.tp.Topic)
 		}
 		if rej != nil {
-			refuse(org, rej)
+			refuse(origin(m.tp, m.offset), rej)
+		}
+	}
+	if s.metrics != nil {
+		for topic, n := range consumed {
+			s.metrics.EventsConsumed.WithLabelValues(topic).Add(float64(n))
 		}
 	}
 	// While the watermark is unknown (some partition has not reported),
@@ -291,21 +322,21 @@ func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 
 	// Clicks: index them (once per click id), taking the conversions that
 	// waited for them.
-	var records []state.ClickRecord
-	var indexed []clickEvent
+	records := make([]state.ClickRecord, 0, len(clicks))
+	indexed := make([]clickEvent, 0, len(clicks))
 	for _, ce := range clicks {
 		e, rej, err := g.experiment(ctx, cfg, ce.c.Experiment, ce.c.Arm)
 		if err != nil {
 			return res, err
 		}
 		if rej != nil {
-			refuse(origin(ce.m.tp, ce.m.offset), rej)
+			refuse(ce.org, rej)
 			continue
 		}
 		if e.seen(ce.m.tp, ce.m.offset) {
 			continue
 		}
-		records = append(records, state.ClickRecord{ClickID: ce.c.ClickID, Experiment: ce.c.Experiment, Arm: ce.c.Arm, TS: ce.c.TS, Window: e.layout.Window, Origin: origin(ce.m.tp, ce.m.offset)})
+		records = append(records, state.ClickRecord{ClickID: ce.c.ClickID, Experiment: ce.c.Experiment, Arm: ce.c.Arm, TS: ce.c.TS, Window: e.layout.Window, Origin: ce.org})
 		indexed = append(indexed, ce)
 	}
 	var put []state.ClickResult
@@ -318,13 +349,13 @@ func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 	}
 	for i, r := range put {
 		ce := indexed[i]
-		org := origin(ce.m.tp, ce.m.offset)
+		org := ce.org
 		e := g.exps[ce.c.Experiment]
 		if r.Status == state.ClickDuplicate {
 			refuse(org, reject(ReasonDuplicateClick, "click_id %q already seen (%s)", ce.c.ClickID, r.Existing.Origin))
 			continue
 		}
-		db.click(e, ce.c.Arm, ce.m.tp, ce.m.offset, ce.c.TS)
+		db.click(e, ce.c.Arm, ce.m.tp, ce.m.offset, ce.org, ce.c.TS)
 		o := r.Orphan
 		if o == nil {
 			continue

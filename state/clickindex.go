@@ -3,8 +3,12 @@ package state
 import (
 	"context"
 	"encoding/binary"
+	"errors"
 	"fmt"
+	"hash/fnv"
+	"slices"
 	"strconv"
+	"sync"
 	"time"
 
 	"github.com/redis/go-redis/v9"
@@ -182,18 +186,38 @@ func (s *Store) PutClicks(ctx context.Context, clicks []ClickRecord) ([]Orphan, 
 	return orphans, nil
 }
 
-// IndexClicks indexes clicks, one atomic script per click, all in one
-// pipeline, in order. A click id is indexed once (SET NX): a later click
-// with the same id from another origin is reported as ClickDuplicate and
-// changes nothing, the same click read again is ClickRedelivered. The
-// conversion parked waiting for an indexed click is claimed and returned
-// with it.
+// clickShards and clickShardMin bound how IndexClicks splits a batch: at
+// most clickShards pipelines at once, each of at least clickShardMin
+// clicks.
+const (
+	clickShards   = 4
+	clickShardMin = 1000
+)
+
+// IndexClicks indexes clicks, pipelined, in order per click id. A click id is
+// indexed once (SET NX): a later click with the same id from another
+// origin is reported as ClickDuplicate and changes nothing, the same click
+// read again is ClickRedelivered. The conversion parked waiting for an
+// indexed click is claimed and returned with it.
+//
+// Each click costs two plain commands on its slot, `SET entry NX GET PX
+// ttl` (new, or the entry that holds the id) and then `EXISTS orphan`; only
+// a click with an orphan runs putclick.lua, which claims it. No join is
+// lost when an instance parks the click's conversion at the same moment:
+// lookup.lua checks for the entry and parks atomically, and this
+// connection's SET runs before its EXISTS, so either the lookup ran
+// before the SET (then the orphan exists when EXISTS runs, and is claimed
+// here) or after it (then the lookup found the click and parked nothing).
+// Nor is one joined twice: a conversion found by its lookup is never
+// parked, and a claimed orphan is marked so (the experiment's conversion
+// marker dedupes a claim repeated by a redelivered click).
 func (s *Store) IndexClicks(ctx context.Context, clicks []ClickRecord) ([]ClickResult, error) {
 	const op = "put clicks"
 	if len(clicks) == 0 {
 		return nil, nil
 	}
-	calls := make([]scriptCall, len(clicks))
+	entries := make([][]byte, len(clicks))
+	ttls := make([]int64, len(clicks))
 	for i, c := range clicks {
 		if c.ClickID == "" || c.Arm == "" || c.Window <= 0 {
 			return nil, permanent(op, fmt.Errorf("%w: click %q on arm %q with window %v", ErrInvalid, c.ClickID, c.Arm, c.Window))
@@ -201,45 +225,108 @@ func (s *Store) IndexClicks(ctx context.Context, clicks []ClickRecord) ([]ClickR
 		if err := validExperiment(c.Experiment); err != nil {
 			return nil, permanent(op, fmt.Errorf("click %q: %w", c.ClickID, err))
 		}
-		ttl := (c.Window + s.opts.ClickTTLSlack).Milliseconds()
-		calls[i] = scriptCall{
+		entries[i] = encodeClick(ClickEntry{Experiment: c.Experiment, Arm: c.Arm, TS: c.TS, Origin: c.Origin})
+		ttls[i] = (c.Window + s.opts.ClickTTLSlack).Milliseconds()
+	}
+	sets := make([]*redis.Cmd, len(clicks))
+	exists := make([]*redis.IntCmd, len(clicks))
+	// A large batch is sent as a few pipelines at once, so that encoding
+	// and decoding overlap the server's work; clicks are split by id, so
+	// the clicks of one id stay in one pipeline, in batch order.
+	shards := 1
+	if len(clicks) >= 2*clickShardMin {
+		shards = min(clickShards, len(clicks)/clickShardMin)
+	}
+	idx := make([][]int, shards)
+	for i, c := range clicks {
+		k := 0
+		if shards > 1 {
+			h := fnv.New32a()
+			h.Write([]byte(c.ClickID))
+			k = int(h.Sum32() % uint32(shards))
+		}
+		idx[k] = append(idx[k], i)
+	}
+	errs := make([]error, shards)
+	var wg sync.WaitGroup
+	for k := range shards {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			pipe := s.rdb.Pipeline()
+			for _, i := range idx[k] {
+				id := clicks[i].ClickID
+				sets[i] = pipe.Do(ctx, "set", s.keys.click(id), entries[i], "nx", "get", "px", ttls[i])
+				exists[i] = pipe.Exists(ctx, s.keys.orphan(id))
+			}
+			if _, err := pipe.Exec(ctx); err != nil && !errors.Is(err, redis.Nil) {
+				errs[k] = err
+			}
+		}()
+	}
+	wg.Wait()
+	if err := errors.Join(errs...); err != nil {
+		return nil, redisFailure(op, fmt.Errorf("%d clicks: %w", len(clicks), err))
+	}
+	out := make([]ClickResult, len(clicks))
+	var claim []int
+	for i, c := range clicks {
+		prev, err := sets[i].Text()
+		switch {
+		case errors.Is(err, redis.Nil):
+			out[i].Status = ClickNew
+		case err != nil:
+			return nil, redisFailure(op, fmt.Errorf("click %q: %w", c.ClickID, err))
+		case prev == string(entries[i]):
+			out[i].Status = ClickRedelivered
+		default:
+			e, err := decodeClick([]byte(prev))
+			if err != nil {
+				return nil, permanent(op, fmt.Errorf("click %q: %w", c.ClickID, err))
+			}
+			out[i] = ClickResult{Status: ClickDuplicate, Existing: e}
+			continue
+		}
+		n, err := exists[i].Result()
+		if err != nil {
+			return nil, redisFailure(op, fmt.Errorf("click %q: orphan: %w", c.ClickID, err))
+		}
+		if n > 0 {
+			claim = append(claim, i)
+		}
+	}
+	if len(claim) == 0 {
+		return out, nil
+	}
+	// The rare clicks whose conversion came first: claim the orphan.
+	calls := make([]scriptCall, len(claim))
+	for j, i := range claim {
+		c := clicks[i]
+		calls[j] = scriptCall{
 			keys: []string{s.keys.click(c.ClickID), s.keys.orphan(c.ClickID)},
-			args: []any{encodeClick(ClickEntry{Experiment: c.Experiment, Arm: c.Arm, TS: c.TS, Origin: c.Origin}), ttl},
+			args: []any{entries[i], ttls[i]},
 		}
 	}
 	cmds, err := runPipelined(ctx, s.rdb, putClickScript, calls)
 	if err != nil {
-		return nil, redisFailure(op, fmt.Errorf("%d clicks: %w", len(clicks), err))
+		return nil, redisFailure(op, fmt.Errorf("%d orphan claims: %w", len(calls), err))
 	}
-	out := make([]ClickResult, len(clicks))
-	for i, cmd := range cmds {
+	for j, cmd := range cmds {
+		i := claim[j]
 		id := clicks[i].ClickID
 		v, _ := cmd.Val().([]any)
 		status := ""
 		if len(v) > 0 {
 			status, _ = v[0].(string)
 		}
-		switch status {
-		case "duplicate":
-			arg := ""
-			if len(v) > 1 {
-				arg, _ = v[1].(string)
-			}
-			e, err := decodeClick([]byte(arg))
-			if err != nil {
-				return nil, permanent(op, fmt.Errorf("click %q: %w", id, err))
-			}
-			out[i] = ClickResult{Status: ClickDuplicate, Existing: e}
-			continue
-		case "new":
-			out[i].Status = ClickNew
-		case "again":
-			out[i].Status = ClickRedelivered
-		default:
-			return nil, permanent(op, fmt.Errorf("click %q: %w: put status %q", id, ErrCorrupt, status))
+		// The entry was stored above, so the script sees it as "again";
+		// anything else means another click took the id meanwhile,
+		// which SET NX rules out (an entry lives out its TTL).
+		if status != "again" && status != "new" {
+			return nil, permanent(op, fmt.Errorf("click %q: %w: claim status %q", id, ErrCorrupt, status))
 		}
 		if len(v) < 2 {
-			continue
+			continue // the sweep is expiring it, or it went away
 		}
 		h, err := flatHash(v[1])
 		if err != nil {
@@ -255,26 +342,29 @@ func (s *Store) IndexClicks(ctx context.Context, clicks []ClickRecord) ([]ClickR
 }
 
 // LookupConversions joins each conversion to its indexed click or parks it
-// as an orphan until the click arrives, atomically per conversion (one
-// script per conversion, pipelined), and adds parked ones to their
+// as an orphan until the click arrives, and adds parked ones to their
 // partition's due set.
 //
-// The orphan cap is checked per partition before the batch: of a batch, at
-// most as many conversions as the partition has room for may park, in
-// batch order, so the cap is never exceeded by more than concurrent
-// writers to the same partition add (normally none: one consumer owns it).
+// It first reads every conversion's click entry (plain GETs, pipelined):
+// an indexed click is only ever removed by its TTL, so a conversion whose
+// click is found is joined without a script. Only the others go through
+// the lookup script, which checks for the click again and parks the
+// conversion atomically with putclick.lua's claim (same slot), so a click
+// and its conversion consumed at the same moment by two instances are
+// joined exactly once.
+//
+// The orphan cap is checked per partition before the scripts: of the
+// conversions whose click is unknown, at most as many as the partition has
+// room for may park, in batch order; only a conversion that parks uses
+// room (one that finds its click in the script after all, or was parked
+// before, gives its share to the next), so the cap is never exceeded by
+// more than concurrent writers to the same partition add (normally none:
+// one consumer owns it).
 func (s *Store) LookupConversions(ctx context.Context, convs []ConversionLookup) ([]LookupResult, error) {
 	const op = "lookup conversions"
 	if len(convs) == 0 {
 		return nil, nil
 	}
-	// Room per partition.
-	type part struct {
-		topic string
-		p     int
-	}
-	room := map[part]int64{}
-	var parts []part
 	for _, c := range convs {
 		if c.ClickID == "" || c.Origin == "" {
 			return nil, permanent(op, fmt.Errorf("%w: conversion of click %q from %q", ErrInvalid, c.ClickID, c.Origin))
@@ -282,13 +372,49 @@ func (s *Store) LookupConversions(ctx context.Context, convs []ConversionLookup)
 		if err := validPartition(c.Topic, c.Partition); err != nil {
 			return nil, permanent(op, err)
 		}
-		k := part{c.Topic, c.Partition}
-		if _, ok := room[k]; !ok {
-			room[k] = 0
-			parts = append(parts, k)
-		}
 	}
+	results := make([]LookupResult, len(convs))
+
+	// Phase 1: the clicks already indexed.
 	pipe := s.rdb.Pipeline()
+	gets := make([]*redis.StringCmd, len(convs))
+	for i, c := range convs {
+		gets[i] = pipe.Get(ctx, s.keys.click(c.ClickID))
+	}
+	if _, err := pipe.Exec(ctx); err != nil && !errors.Is(err, redis.Nil) {
+		return nil, redisFailure(op, fmt.Errorf("%d click entries: %w", len(convs), err))
+	}
+	type part struct {
+		topic string
+		p     int
+	}
+	var pending []int // conversions whose click is unknown, in batch order
+	var parts []part
+	for i, g := range gets {
+		b, err := g.Bytes()
+		switch {
+		case errors.Is(err, redis.Nil):
+			c := convs[i]
+			pending = append(pending, i)
+			if k := (part{c.Topic, c.Partition}); !slices.Contains(parts, k) {
+				parts = append(parts, k)
+			}
+			continue
+		case err != nil:
+			return nil, redisFailure(op, fmt.Errorf("click %q: %w", convs[i].ClickID, err))
+		}
+		e, err := decodeClick(b)
+		if err != nil {
+			return nil, permanent(op, fmt.Errorf("click %q: %w", convs[i].ClickID, err))
+		}
+		results[i] = LookupResult{Status: LookupFound, Click: e}
+	}
+	if len(pending) == 0 {
+		return results, nil
+	}
+
+	// Phase 2: look up or park the others, within each partition's room.
+	pipe = s.rdb.Pipeline()
 	cards := make([]*redis.IntCmd, len(parts))
 	for i, p := range parts {
 		cards[i] = pipe.ZCard(ctx, s.keys.due(p.topic, p.p))
@@ -296,63 +422,69 @@ func (s *Store) LookupConversions(ctx context.Context, convs []ConversionLookup)
 	if _, err := pipe.Exec(ctx); err != nil {
 		return nil, redisFailure(op, fmt.Errorf("orphan counts: %w", err))
 	}
+	room := make(map[part]int64, len(parts))
 	for i, p := range parts {
 		room[p] = int64(s.opts.MaxParkedOrphans) - cards[i].Val()
 	}
-
 	ttl := s.opts.OrphanTTL.Milliseconds()
-	calls := make([]scriptCall, len(convs))
-	for i, c := range convs {
-		k := part{c.Topic, c.Partition}
-		allow := "0"
-		if room[k] > 0 {
-			allow = "1"
-			room[k]--
+	// Each round settles every conversion allowed to park (it parks, or
+	// finds its click after all, or was parked before, or is a
+	// duplicate); a share of room not used that way goes back, and the
+	// conversions refused in the round for want of room try again. Every
+	// round that allows one settles it, so rounds end.
+	for len(pending) > 0 {
+		allowed := make([]bool, len(pending))
+		calls := make([]scriptCall, len(pending))
+		progress := false
+		for j, i := range pending {
+			c := convs[i]
+			k := part{c.Topic, c.Partition}
+			allow := "0"
+			if room[k] > 0 {
+				allow = "1"
+				room[k]--
+				allowed[j], progress = true, true
+			}
+			calls[j] = scriptCall{
+				keys: []string{s.keys.click(c.ClickID), s.keys.orphan(c.ClickID)},
+				args: []any{allow, ttl, c.Origin, c.TS, c.Deadline, c.Topic, c.Partition, c.Raw},
+			}
 		}
-		calls[i] = scriptCall{
-			keys: []string{s.keys.click(c.ClickID), s.keys.orphan(c.ClickID)},
-			args: []any{allow, ttl, c.Origin, c.TS, c.Deadline, c.Topic, c.Partition, c.Raw},
+		cmds, err := runPipelined(ctx, s.rdb, lookupScript, calls)
+		if err != nil {
+			return nil, redisFailure(op, fmt.Errorf("%d conversions: %w", len(calls), err))
 		}
-	}
-	cmds, err := runPipelined(ctx, s.rdb, lookupScript, calls)
-	if err != nil {
-		return nil, redisFailure(op, fmt.Errorf("%d conversions: %w", len(convs), err))
-	}
-	results := make([]LookupResult, len(convs))
-	pipe = s.rdb.Pipeline()
-	due := 0
-	for i, cmd := range cmds {
-		v, _ := cmd.Val().([]any)
-		status := ""
-		if len(v) > 0 {
-			status, _ = v[0].(string)
-		}
-		arg := ""
-		if len(v) > 1 {
-			arg, _ = v[1].(string)
-		}
-		c := convs[i]
-		switch status {
-		case "found":
-			e, err := decodeClick([]byte(arg))
+		var refused []int
+		for j, cmd := range cmds {
+			i := pending[j]
+			c := convs[i]
+			r, err := lookupReply(cmd)
 			if err != nil {
 				return nil, permanent(op, fmt.Errorf("click %q: %w", c.ClickID, err))
 			}
-			results[i] = LookupResult{Status: LookupFound, Click: e}
-		case "parked":
-			results[i] = LookupResult{Status: LookupParked}
-		case "again":
-			results[i] = LookupResult{Status: LookupParkedBefore, Claimed: arg == "c"}
-		case "duplicate":
-			results[i] = LookupResult{Status: LookupDuplicate, Origin: arg}
-			continue
-		case "cap":
-			results[i] = LookupResult{Status: LookupCapExceeded}
-			continue
-		default:
-			return nil, permanent(op, fmt.Errorf("click %q: %w: lookup status %q", c.ClickID, ErrCorrupt, status))
+			if allowed[j] && r.Status != LookupParked {
+				room[part{c.Topic, c.Partition}]++ // its share was not used
+			}
+			results[i] = r
+			if r.Status == LookupCapExceeded {
+				refused = append(refused, i)
+			}
 		}
-		if results[i].Status == LookupParked || (results[i].Status == LookupParkedBefore && !results[i].Claimed) {
+		pending = pending[:0]
+		if progress {
+			for _, i := range refused {
+				if c := convs[i]; room[part{c.Topic, c.Partition}] > 0 {
+					pending = append(pending, i)
+				}
+			}
+		}
+	}
+
+	pipe = s.rdb.Pipeline()
+	due := 0
+	for i, r := range results {
+		c := convs[i]
+		if r.Status == LookupParked || (r.Status == LookupParkedBefore && !r.Claimed) {
 			// NX: a redelivery after a crash between parking and this
 			// step re-adds the entry; an existing one keeps its deadline.
 			pipe.ZAddNX(ctx, s.keys.due(c.Topic, c.Partition), redis.Z{Score: float64(c.Deadline), Member: c.ClickID})
@@ -365,6 +497,36 @@ func (s *Store) LookupConversions(ctx context.Context, convs []ConversionLookup)
 		}
 	}
 	return results, nil
+}
+
+// lookupReply reads one reply of lookup.lua.
+func lookupReply(cmd *redis.Cmd) (LookupResult, error) {
+	v, _ := cmd.Val().([]any)
+	status := ""
+	if len(v) > 0 {
+		status, _ = v[0].(string)
+	}
+	arg := ""
+	if len(v) > 1 {
+		arg, _ = v[1].(string)
+	}
+	switch status {
+	case "found":
+		e, err := decodeClick([]byte(arg))
+		if err != nil {
+			return LookupResult{}, err
+		}
+		return LookupResult{Status: LookupFound, Click: e}, nil
+	case "parked":
+		return LookupResult{Status: LookupParked}, nil
+	case "again":
+		return LookupResult{Status: LookupParkedBefore, Claimed: arg == "c"}, nil
+	case "duplicate":
+		return LookupResult{Status: LookupDuplicate, Origin: arg}, nil
+	case "cap":
+		return LookupResult{Status: LookupCapExceeded}, nil
+	}
+	return LookupResult{}, fmt.Errorf("%w: lookup status %q", ErrCorrupt, status)
 }
 
 // dueBatch is how many due entries DueOrphans settles per round trip.

@@ -225,6 +225,63 @@ func TestOrphanCap(t *testing.T) {
 	}
 }
 
+// TestOrphanCapOnlyParked checks that only conversions that park use a
+// partition's room: conversions whose click is indexed, redeliveries of
+// parked ones and duplicates take none of it, whatever their place in
+// the batch.
+func TestOrphanCapOnlyParked(t *testing.T) {
+	s, rdb, _ := newStore(t, Options{MaxParkedOrphans: 2})
+	ctx := testCtx(t)
+	var clicks []ClickRecord
+	for i := range 3 {
+		clicks = append(clicks, ClickRecord{ClickID: fmt.Sprintf("known%d", i), Experiment: "e", Arm: "red", TS: t0, Window: time.Hour})
+	}
+	if _, err := s.IndexClicks(ctx, clicks); err != nil {
+		t.Fatal(err)
+	}
+	conv := func(id string, off int) ConversionLookup {
+		return ConversionLookup{ClickID: id, TS: t0 + 1000, Origin: fmt.Sprintf("convs/0/%d", off), Topic: "convs", Partition: 0, Deadline: t0 + 5000}
+	}
+	tests := []struct {
+		name  string
+		convs []ConversionLookup
+		want  []LookupStatus
+	}{
+		{
+			// Three joined conversions first: before the fix they took
+			// both shares of room and the two unknown clicks were capped.
+			name:  "joined before parked",
+			convs: []ConversionLookup{conv("known0", 1), conv("known1", 2), conv("known2", 3), conv("wait0", 4), conv("wait1", 5)},
+			want:  []LookupStatus{LookupFound, LookupFound, LookupFound, LookupParked, LookupParked},
+		},
+		{
+			// The partition is full now; redeliveries and a duplicate
+			// are still answered as such, a new unknown click is capped.
+			name:  "full partition",
+			convs: []ConversionLookup{conv("wait0", 4), conv("wait1", 9), conv("known0", 1), conv("wait2", 6)},
+			want:  []LookupStatus{LookupParkedBefore, LookupDuplicate, LookupFound, LookupCapExceeded},
+		},
+	}
+	for _, tc := range tests {
+		t.Run(tc.name, func(t *testing.T) {
+			res, err := s.LookupConversions(ctx, tc.convs)
+			if err != nil {
+				t.Fatal(err)
+			}
+			var got []LookupStatus
+			for _, r := range res {
+				got = append(got, r.Status)
+			}
+			if !reflect.DeepEqual(got, tc.want) {
+				t.Fatalf("statuses %v, want %v", got, tc.want)
+			}
+			if n, _ := rdb.ZCard(ctx, s.keys.due("convs", 0)).Result(); n != 2 {
+				t.Errorf("due set holds %d, want the 2 parked", n)
+			}
+		})
+	}
+}
+
 // TestScriptsAfterRestart restarts the server (its script cache is empty)
 // and checks that pipelined and single scripts reload themselves, and that
 // calls while it is down fail as retriable.
@@ -285,5 +342,60 @@ func TestClickBytes(t *testing.T) {
 	// included, so that tens of millions of clicks fit a few GiB.
 	if perKey <= 0 || perKey > 160 || perClick > 300 {
 		t.Errorf("click entry costs %.1f (key) / %.1f (server) bytes, budget 160 / 300", perKey, perClick)
+	}
+}
+
+// TestIndexClicksLargeBatch indexes a batch large enough to be sent as
+// several pipelines at once and checks that clicks of one id keep their
+// batch order (the first is indexed, a repeat from another origin is a
+// duplicate, an exact repeat a redelivery) and that parked conversions
+// are claimed by their clicks.
+func TestIndexClicksLargeBatch(t *testing.T) {
+	s, _, _ := newStore(t, Options{})
+	ctx := testCtx(t)
+	const n = 4 * clickShardMin
+	var parked []ConversionLookup
+	for i := 0; i < n; i += 97 {
+		parked = append(parked, ConversionLookup{ClickID: fmt.Sprintf("big%d", i), TS: t0 + 10, Origin: fmt.Sprintf("convs/0/%d", i), Topic: "convs", Partition: 0, Deadline: t0 + 1000})
+	}
+	if _, err := s.LookupConversions(ctx, parked); err != nil {
+		t.Fatal(err)
+	}
+	var clicks []ClickRecord
+	want := map[int]ClickStatus{}
+	for i := range n {
+		clicks = append(clicks, ClickRecord{ClickID: fmt.Sprintf("big%d", i), Experiment: "e", Arm: "red", TS: t0, Window: time.Hour, Origin: fmt.Sprintf("clicks/0/%d", i)})
+		want[len(clicks)-1] = ClickNew
+		if i%50 == 7 {
+			// A reused id from another origin, then an exact repeat.
+			clicks = append(clicks, ClickRecord{ClickID: fmt.Sprintf("big%d", i), Experiment: "e", Arm: "blue", TS: t0 + 5, Window: time.Hour, Origin: fmt.Sprintf("clicks/1/%d", i)})
+			want[len(clicks)-1] = ClickDuplicate
+			clicks = append(clicks, clicks[len(clicks)-2])
+			want[len(clicks)-1] = ClickRedelivered
+		}
+	}
+	res, err := s.IndexClicks(ctx, clicks)
+	if err != nil {
+		t.Fatal(err)
+	}
+	claimed := 0
+	for i, r := range res {
+		if r.Status != want[i] {
+			t.Fatalf("click %d (%s from %s): %v, want %v", i, clicks[i].ClickID, clicks[i].Origin, r.Status, want[i])
+		}
+		if r.Status == ClickDuplicate && (r.Existing.Arm != "red" || r.Existing.Origin == clicks[i].Origin) {
+			t.Errorf("click %d: existing %+v, want the first click", i, r.Existing)
+		}
+		if r.Orphan != nil {
+			if r.Status == ClickNew {
+				claimed++
+			}
+			if want := "convs/0/" + clicks[i].ClickID[len("big"):]; r.Orphan.Origin != want {
+				t.Errorf("click %d claimed %q, want %q", i, r.Orphan.Origin, want)
+			}
+		}
+	}
+	if claimed != len(parked) {
+		t.Errorf("new clicks claimed %d orphans, want %d", claimed, len(parked))
 	}
 }

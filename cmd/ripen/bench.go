@@ -64,6 +64,11 @@ type benchResult struct {
 	BytesMethod               string  `json:"bytes_method"`
 	// RedisFieldsPerArm is the mean field count of those arm hashes.
 	RedisFieldsPerArm float64 `json:"redis_fields_per_arm"`
+	// RedisBytesPerArmCompacted and RedisFieldsPerArmCompacted are the
+	// same after state.Store.Compact of every arm, as the refit owner
+	// leaves them after each refit.
+	RedisBytesPerArmCompacted  float64 `json:"redis_bytes_per_arm_compacted"`
+	RedisFieldsPerArmCompacted float64 `json:"redis_fields_per_arm_compacted"`
 	// Generated and Counted are the clicks and conversions produced and
 	// those the last pipeline run holds in Redis; bench fails when they
 	// differ.
@@ -254,6 +259,21 @@ func runBench(ctx context.Context, o benchOptions) (*benchResult, error) {
 		return nil, err
 	}
 	if res.RedisBytesPerPendingClick, err = meanMemoryUsage(ctx, rdb, lastPrefix+":{k:*}:c", 2000); err != nil {
+		return nil, err
+	}
+	// What the refit owner's compaction after each refit leaves (the
+	// bench runs no refit, so it is done here, once).
+	for id, arms := range ev.experiments {
+		for _, arm := range arms {
+			if _, err := st.Compact(ctx, id, arm); err != nil {
+				return nil, fmt.Errorf("bench: compact %s/%s: %w", id, arm, err)
+			}
+		}
+	}
+	if res.RedisBytesPerArmCompacted, err = meanMemoryUsage(ctx, rdb, lastPrefix+":{x:*}:a:*", 0); err != nil {
+		return nil, err
+	}
+	if res.RedisFieldsPerArmCompacted, err = meanHashLen(ctx, rdb, lastPrefix+":{x:*}:a:*"); err != nil {
 		return nil, err
 	}
 	return res, nil
@@ -479,6 +499,7 @@ func writeBench(w io.Writer, format string, r *benchResult) error {
 	fmt.Fprintf(tw, "pipeline\t%.0f events/s\n", r.PipelineEPS)
 	fmt.Fprintf(tw, "pipeline/bare\t%.3f (median of rounds)\n", r.Ratio)
 	fmt.Fprintf(tw, "redis bytes per arm\t%.0f (%s; %.0f hash fields, not compacted)\n", r.RedisBytesPerArm, r.BytesMethod, r.RedisFieldsPerArm)
+	fmt.Fprintf(tw, "redis bytes per arm, compacted\t%.0f (%.0f hash fields, as after a refit)\n", r.RedisBytesPerArmCompacted, r.RedisFieldsPerArmCompacted)
 	fmt.Fprintf(tw, "redis bytes per pending click\t%.0f (%s)\n", r.RedisBytesPerPendingClick, r.BytesMethod)
 	return tw.Flush()
 }

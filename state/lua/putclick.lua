@@ -3,6 +3,8 @@
 -- orphan is marked claimed, not deleted: a redelivered click takes it
 -- again, and the experiment's conversion marker keeps it from counting
 -- twice. An orphan its sweep is expiring (state "x") is left to the sweep.
+-- IndexClicks stores entries with plain SET NX GET and runs this script
+-- only for a click whose orphan key exists.
 --
 -- KEYS[1] click entry <p>:{k:<click>}:c
 -- KEYS[2] orphan      <p>:{k:<click>}:o

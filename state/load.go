@@ -209,9 +209,10 @@ func flatHash(v any) (map[string]string, error) {
 	return h, nil
 }
 
-// armFields are the parsed counts of an arm hash, in whatever (possibly
-// finer than canonical) buckets they were written.
-type armFields struct {
+// armCounts are the counts of an arm hash: as parsed, in whatever
+// (possibly finer than canonical) buckets they were written, or, from
+// canonicalize, re-keyed to canonical buckets at one watermark.
+type armCounts struct {
 	clicks, converted  map[estimator.BucketKey]uint64
 	maturedClicks      uint64
 	maturedConversions uint64
@@ -222,8 +223,8 @@ type armFields struct {
 
 // parseArmHash reads an arm hash; see the package documentation for its
 // fields.
-func parseArmHash(h map[string]string, nbins int) (armFields, error) {
-	a := armFields{
+func parseArmHash(h map[string]string, nbins int) (armCounts, error) {
+	a := armCounts{
 		clicks:    make(map[estimator.BucketKey]uint64),
 		converted: make(map[estimator.BucketKey]uint64),
 		delays:    make([]uint64, nbins),
@@ -269,17 +270,6 @@ func parseArmHash(h map[string]string, nbins int) (armFields, error) {
 	return a, nil
 }
 
-// canonArm is an arm's counts re-keyed to canonical buckets at one
-// watermark.
-type canonArm struct {
-	clicks, converted  map[estimator.BucketKey]uint64
-	maturedClicks      uint64
-	maturedConversions uint64
-	delays             []uint64
-	delayCount         uint64
-	delaySumMs         uint64
-}
-
 // canonicalize re-keys an arm hash to canonical buckets at wm.
 //
 // Click and conversion counts of one click time may sit in buckets of
@@ -287,11 +277,11 @@ type canonArm struct {
 // each kind is re-keyed on its own by estimator.FromSnapshot, with
 // conversions posing as clicks (FromSnapshot checks each input bucket's
 // conversions against its clicks).
-func canonicalize(l estimator.Layout, wm int64, h map[string]string) (canonArm, error) {
+func canonicalize(l estimator.Layout, wm int64, h map[string]string) (armCounts, error) {
 	nbins := len(l.DelayEdges()) - 1
 	a, err := parseArmHash(h, nbins)
 	if err != nil {
-		return canonArm{}, err
+		return armCounts{}, err
 	}
 	rekey := func(m map[estimator.BucketKey]uint64) (map[estimator.BucketKey]uint64, uint64, error) {
 		snap := estimator.ArmSnapshot{Layout: l, Watermark: wm, Delays: make([]uint64, nbins)}
@@ -311,13 +301,13 @@ func canonicalize(l estimator.Layout, wm int64, h map[string]string) (canonArm, 
 		}
 		return res, out.MaturedClicks, nil
 	}
-	c := canonArm{delays: a.delays, delayCount: a.delayCount, delaySumMs: a.delaySumMs}
+	c := armCounts{delays: a.delays, delayCount: a.delayCount, delaySumMs: a.delaySumMs}
 	var mc, mv uint64
 	if c.clicks, mc, err = rekey(a.clicks); err != nil {
-		return canonArm{}, fmt.Errorf("%w: clicks: %w", ErrCorrupt, err)
+		return armCounts{}, fmt.Errorf("%w: clicks: %w", ErrCorrupt, err)
 	}
 	if c.converted, mv, err = rekey(a.converted); err != nil {
-		return canonArm{}, fmt.Errorf("%w: conversions: %w", ErrCorrupt, err)
+		return armCounts{}, fmt.Errorf("%w: conversions: %w", ErrCorrupt, err)
 	}
 	c.maturedClicks = a.maturedClicks + mc
 	c.maturedConversions = a.maturedConversions + mv
@@ -328,7 +318,7 @@ func canonicalize(l estimator.Layout, wm int64, h map[string]string) (canonArm, 
 // bucket's clicks are held back and counted in held: the delta of a
 // conversion can land before the delta of its click when the two are
 // consumed from different partitions, and they show once the click lands.
-func (c canonArm) state(l estimator.Layout, wm int64) (st *estimator.ArmState, held uint64, err error) {
+func (c armCounts) state(l estimator.Layout, wm int64) (st *estimator.ArmState, held uint64, err error) {
 	snap := estimator.ArmSnapshot{
 		Layout:             l,
 		Watermark:          wm,
@@ -358,7 +348,7 @@ func (c canonArm) state(l estimator.Layout, wm int64) (st *estimator.ArmState, h
 
 // fields is the arm hash holding exactly c's counts, zero fields left out.
 // Held-back conversions are kept.
-func (c canonArm) fields() map[string]string {
+func (c armCounts) fields() map[string]string {
 	h := make(map[string]string)
 	put := func(f string, n uint64) {
 		if n > 0 {

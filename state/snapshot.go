@@ -322,7 +322,7 @@ func sortedOffsets(offs map[TopicPartition]AppliedOffset) []PartitionOffset {
 
 // record turns canonical counts into an ArmRecord: the state Load builds
 // and the conversions it holds back.
-func (c canonArm) record(name string, l estimator.Layout, wm int64) (ArmRecord, error) {
+func (c armCounts) record(name string, l estimator.Layout, wm int64) (ArmRecord, error) {
 	st, _, err := c.state(l, wm)
 	if err != nil {
 		return ArmRecord{}, err
@@ -383,13 +383,13 @@ func fieldsOf(rec ArmRecord) (map[string]string, error) {
 type canonExperiment struct {
 	e      *ExperimentSnapshot
 	layout estimator.Layout
-	arms   map[string]canonArm
+	arms   map[string]armCounts
 }
 
 // canonical checks e and re-keys every arm to canonical buckets at its
 // watermark, as Load would after an Import.
 func (e *ExperimentSnapshot) canonical() (canonExperiment, error) {
-	ce := canonExperiment{e: e, arms: make(map[string]canonArm, len(e.Arms))}
+	ce := canonExperiment{e: e, arms: make(map[string]armCounts, len(e.Arms))}
 	if err := validExperiment(e.ID); err != nil {
 		return ce, err
 	}
@@ -1007,7 +1007,7 @@ type ArmTotals struct {
 	Conversions uint64 `json:"conversions"`
 }
 
-func (c canonArm) totals() ArmTotals {
+func (c armCounts) totals() ArmTotals {
 	t := ArmTotals{Clicks: c.maturedClicks, Conversions: c.maturedConversions}
 	for _, n := range c.clicks {
 		t.Clicks += n
@@ -1096,7 +1096,7 @@ func diffExperiment(id string, a, b *ExperimentSnapshot) []ArmDiff {
 	}
 	ca, errA := canon(a)
 	cb, errB := canon(b)
-	armsOf := func(c canonExperiment) map[string]canonArm { return c.arms }
+	armsOf := func(c canonExperiment) map[string]armCounts { return c.arms }
 	switch {
 	case a == nil || b == nil:
 		kind, c := DiffOnlyInA, ca
@@ -1170,7 +1170,7 @@ func diffExperiment(id string, a, b *ExperimentSnapshot) []ArmDiff {
 }
 
 // diffArm names the counts that differ between two canonical arms.
-func diffArm(x, y canonArm) []string {
+func diffArm(x, y armCounts) []string {
 	var f []string
 	if !bucketsEqual(x.clicks, y.clicks) {
 		f = append(f, "pending_clicks")
@@ -1210,7 +1210,7 @@ func bucketsEqual(a, b map[estimator.BucketKey]uint64) bool {
 	return true
 }
 
-func sortedArmNames(a, b map[string]canonArm) []string {
+func sortedArmNames(a, b map[string]armCounts) []string {
 	var names []string
 	for n := range a {
 		names = append(names, n)

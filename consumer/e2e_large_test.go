@@ -154,16 +154,43 @@ type produceStep struct {
 // on every partition of both topics at clock, two refit periods after the
 // last event, so that a refit sees every other event.
 func genLargeStream(seed uint64, n, chunks int, partitions int, refitEvery time.Duration) largeStream {
-	r := rand.New(rand.NewPCG(seed, 0x1a76e))
-	type exp struct {
-		id   string
-		arms []string
-		cvr  []float64
-	}
-	exps := []exp{
-		{"tea-hero", []string{"oolong", "sencha", "rooibos"}, []float64{0.08, 0.11, 0.09}},
-		{"ski-booking", []string{"one-page", "wizard"}, []float64{0.15, 0.12}},
-	}
+	return genChunkedStream(streamSpec{
+		seed: seed, seedKey: 0x1a76e, idPrefix: "t", waitEarly: true,
+		exps: []streamExperiment{
+			{"tea-hero", []string{"oolong", "sencha", "rooibos"}, []float64{0.08, 0.11, 0.09}},
+			{"ski-booking", []string{"one-page", "wizard"}, []float64{0.15, 0.12}},
+		},
+		n: n, chunks: chunks, partitions: partitions, refitEvery: refitEvery,
+	})
+}
+
+// streamExperiment is one experiment of a generated stream with the true
+// eventual conversion rate of each arm.
+type streamExperiment struct {
+	id   string
+	arms []string
+	cvr  []float64
+}
+
+// streamSpec describes a generated stream (see genLargeStream).
+type streamSpec struct {
+	seed, seedKey uint64
+	idPrefix      string
+	exps          []streamExperiment
+	n, chunks     int
+	partitions    int
+	refitEvery    time.Duration
+	// waitEarly makes each chunk's early conversions a step that waits
+	// until they are consumed before the clicks are produced.
+	waitEarly bool
+}
+
+// genChunkedStream builds the stream described by sp: clicks in chunks, each
+// chunk's early conversions first, then its clicks and the rest of its
+// conversions, and the clock step last.
+func genChunkedStream(sp streamSpec) largeStream {
+	r := rand.New(rand.NewPCG(sp.seed, sp.seedKey))
+	exps, n, chunks, partitions, refitEvery := sp.exps, sp.n, sp.chunks, sp.partitions, sp.refitEvery
 	meanDelay := float64((20 * time.Minute).Milliseconds())
 	windowMs := testWindow.Milliseconds()
 	var ls largeStream
@@ -174,7 +201,7 @@ func genLargeStream(seed uint64, n, chunks int, partitions int, refitEvery time.
 			e := exps[r.IntN(len(exps))]
 			a := r.IntN(len(e.arms))
 			ts := streamT0 + int64(i)*2000 + r.Int64N(2000)
-			id := fmt.Sprintf("t%06d", i)
+			id := fmt.Sprintf("%s%06d", sp.idPrefix, i)
 			clicks = append(clicks, jsonMessage(id, Click{ClickID: id, Experiment: e.id, Arm: e.arms[a], TS: ts}))
 			ls.last = max(ls.last, ts)
 			if r.Float64() >= e.cvr[a] {
@@ -210,7 +237,7 @@ func genLargeStream(seed uint64, n, chunks int, partitions int, refitEvery time.
 			convs[i], convs[j] = convs[j], convs[i]
 		}
 		ls.steps = append(ls.steps,
-			produceStep{convs: map[int][]kafka.Message{-1: early}, wait: true},
+			produceStep{convs: map[int][]kafka.Message{-1: early}, wait: sp.waitEarly},
 			produceStep{clicks: map[int][]kafka.Message{-1: clicks}, convs: map[int][]kafka.Message{-1: convs}},
 		)
 		ls.clicks = append(ls.clicks, clicks...)

@@ -5,7 +5,6 @@ import (
 	"encoding/json"
 	"fmt"
 	"maps"
-	"math/rand/v2"
 	"reflect"
 	"slices"
 	"strings"
@@ -25,11 +24,7 @@ import (
 
 // scaleOutExperiments are the invented experiments of the scale-out
 // stream: six shops, so that their hash tags spread over the masters.
-var scaleOutExperiments = []struct {
-	id   string
-	arms []string
-	cvr  []float64
-}{
+var scaleOutExperiments = []streamExperiment{
 	{"fern-nursery-hero", []string{"fronds", "pots"}, []float64{0.10, 0.13}},
 	{"kayak-rental-form", []string{"short", "long", "stepped"}, []float64{0.16, 0.12, 0.14}},
 	{"cider-press-price", []string{"per-litre", "per-crate"}, []float64{0.07, 0.09}},
@@ -48,75 +43,10 @@ var scaleOutExperiments = []struct {
 // click partition and one conversion of an unknown click on every
 // conversion partition, two refit periods after the rest.
 func genScaleOutStream(seed uint64, n, chunks, partitions int, refitEvery time.Duration) largeStream {
-	r := rand.New(rand.NewPCG(seed, 0x5ca1e))
-	meanDelay := float64((20 * time.Minute).Milliseconds())
-	windowMs := testWindow.Milliseconds()
-	var ls largeStream
-	per := (n + chunks - 1) / chunks
-	for c := range chunks {
-		var clicks, early, convs []kafka.Message
-		for i := c * per; i < min(n, (c+1)*per); i++ {
-			e := scaleOutExperiments[r.IntN(len(scaleOutExperiments))]
-			a := r.IntN(len(e.arms))
-			ts := streamT0 + int64(i)*2000 + r.Int64N(2000)
-			id := fmt.Sprintf("s%06d", i)
-			clicks = append(clicks, jsonMessage(id, Click{ClickID: id, Experiment: e.id, Arm: e.arms[a], TS: ts}))
-			ls.last = max(ls.last, ts)
-			if r.Float64() >= e.cvr[a] {
-				continue
-			}
-			d := min(int64(r.ExpFloat64()*meanDelay), windowMs-60_000)
-			conv := Conversion{ClickID: id, TS: ts + d}
-			if r.Float64() < 0.2 {
-				conv.Experiment, conv.Arm, conv.ClickTS = e.id, e.arms[a], ts
-			}
-			m := jsonMessage(id, conv)
-			ls.conversions++
-			if r.Float64() < 0.03 {
-				early = append(early, m)
-				ls.early++
-			} else {
-				convs = append(convs, m)
-			}
-			ls.last = max(ls.last, conv.TS)
-			if r.Float64() < 0.05 {
-				ls.dups++
-				if r.IntN(2) == 0 {
-					convs = append(convs, m)
-				} else {
-					later := Conversion{ClickID: id, TS: conv.TS + 1 + r.Int64N(windowMs-d-1)}
-					convs = append(convs, jsonMessage(id, later))
-				}
-			}
-		}
-		for i := range convs {
-			j := min(len(convs)-1, i+r.IntN(20))
-			convs[i], convs[j] = convs[j], convs[i]
-		}
-		ls.steps = append(ls.steps,
-			produceStep{convs: map[int][]kafka.Message{-1: early}},
-			produceStep{clicks: map[int][]kafka.Message{-1: clicks}, convs: map[int][]kafka.Message{-1: convs}},
-		)
-		ls.clicks = append(ls.clicks, clicks...)
-		ls.convs = append(ls.convs, early...)
-		ls.convs = append(ls.convs, convs...)
-	}
-	ls.clock = ls.last + 2*refitEvery.Milliseconds() + 10*time.Minute.Milliseconds()
-	clock := produceStep{clicks: map[int][]kafka.Message{}, convs: map[int][]kafka.Message{}, wait: true}
-	for p := range partitions {
-		for _, e := range scaleOutExperiments {
-			id := fmt.Sprintf("clock-%s-p%d", e.id, p)
-			m := jsonMessage(id, Click{ClickID: id, Experiment: e.id, Arm: e.arms[0], TS: ls.clock})
-			clock.clicks[p] = append(clock.clicks[p], m)
-			ls.clicks = append(ls.clicks, m)
-		}
-		id := fmt.Sprintf("clock-unknown-p%d", p)
-		m := jsonMessage(id, Conversion{ClickID: id, TS: ls.clock})
-		clock.convs[p] = append(clock.convs[p], m)
-		ls.convs = append(ls.convs, m)
-	}
-	ls.steps = append(ls.steps, clock)
-	return ls
+	return genChunkedStream(streamSpec{
+		seed: seed, seedKey: 0x5ca1e, idPrefix: "s", exps: scaleOutExperiments,
+		n: n, chunks: chunks, partitions: partitions, refitEvery: refitEvery,
+	})
 }
 
 // produceScaleOutStep produces one step: its conversions first, then its

@@ -3,53 +3,25 @@ package state
 import (
 	"context"
 	"regexp"
-	"strings"
 	"testing"
 	"time"
+
+	"ripen/state/redistest"
 )
-
-// crc16 is CRC16-XMODEM (polynomial 0x1021, initial value 0), the key hash
-// of Redis Cluster.
-func crc16(b []byte) uint16 {
-	var crc uint16
-	for _, c := range b {
-		crc ^= uint16(c) << 8
-		for range 8 {
-			if crc&0x8000 != 0 {
-				crc = crc<<1 ^ 0x1021
-			} else {
-				crc <<= 1
-			}
-		}
-	}
-	return crc
-}
-
-// keySlot is a key's cluster slot: CRC16 of its hash tag (the part between
-// the first '{' and the next '}', if non-empty) or of the whole key, mod
-// 16384.
-func keySlot(key string) int {
-	if i := strings.IndexByte(key, '{'); i >= 0 {
-		if j := strings.IndexByte(key[i+1:], '}'); j > 0 {
-			key = key[i+1 : i+1+j]
-		}
-	}
-	return int(crc16([]byte(key)) & 16383)
-}
 
 // TestCRC16 checks the hash against the test vector of the Redis Cluster
 // Specification ("Keys distribution model", CRC16 reference: XMODEM,
 // "123456789" -> 0x31C3).
 func TestCRC16(t *testing.T) {
-	if got := crc16([]byte("123456789")); got != 0x31C3 {
-		t.Fatalf("crc16(123456789) = %#04x, want 0x31c3", got)
+	if got := redistest.CRC16([]byte("123456789")); got != 0x31C3 {
+		t.Fatalf("redistest.CRC16(123456789) = %#04x, want 0x31c3", got)
 	}
 	// Hash tags per the same section: {user1000}.following and
 	// {user1000}.followers hash to the same slot; foo{}{bar} hashes whole.
-	if keySlot("{user1000}.following") != keySlot("{user1000}.followers") {
+	if redistest.KeySlot("{user1000}.following") != redistest.KeySlot("{user1000}.followers") {
 		t.Errorf("hash tag ignored")
 	}
-	if keySlot("foo{}{bar}") != int(crc16([]byte("foo{}{bar}"))&16383) {
+	if redistest.KeySlot("foo{}{bar}") != int(redistest.CRC16([]byte("foo{}{bar}"))&16383) {
 		t.Errorf("empty hash tag not hashed whole")
 	}
 }
@@ -108,12 +80,12 @@ func TestKeysHashTags(t *testing.T) {
 		}
 		kinds[m[1]]++
 		group := m[1] + ":" + m[2]
-		slot := keySlot(k)
+		slot := redistest.KeySlot(k)
 		if prev, ok := slots[group]; ok && prev != slot {
 			t.Errorf("key %q in slot %d, other keys of %s in %d", k, slot, group, prev)
 		}
 		slots[group] = slot
-		if want := int(crc16([]byte(group)) & 16383); slot != want {
+		if want := int(redistest.CRC16([]byte(group)) & 16383); slot != want {
 			t.Errorf("key %q hashes to %d, its tag %q to %d", k, slot, group, want)
 		}
 	}

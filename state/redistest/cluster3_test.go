@@ -10,46 +10,14 @@ import (
 	"time"
 )
 
-// crc16 is the CRC-16/XMODEM checksum (polynomial 0x1021, initial value 0,
-// no reflection) that Redis Cluster hashes keys with, computed bit by bit
-// from its definition.
-func crc16(b []byte) uint16 {
-	var crc uint16
-	for _, c := range b {
-		crc ^= uint16(c) << 8
-		for range 8 {
-			if crc&0x8000 != 0 {
-				crc = crc<<1 ^ 0x1021
-			} else {
-				crc <<= 1
-			}
-		}
-	}
-	return crc
-}
-
-// keySlot is HASH_SLOT = CRC16(key) mod 16384, where only the part between
-// the first "{" and the next "}" is hashed when that part is not empty.
-// Source: Redis Cluster specification, section "Keys distribution model"
-// and "Hash tags" (redis.io/docs/reference/cluster-spec, recalled from
-// memory).
-func keySlot(key string) int {
-	if i := strings.IndexByte(key, '{'); i >= 0 {
-		if j := strings.IndexByte(key[i+1:], '}'); j > 0 {
-			key = key[i+1 : i+1+j]
-		}
-	}
-	return int(crc16([]byte(key))) % ClusterSlots
-}
-
 // TestCluster3CRC16CheckValue checks the checksum against its published
 // check value: CRC-16/XMODEM of the nine bytes "123456789" is 0x31C3
 // (Redis Cluster specification, appendix "CRC16 reference implementation",
 // whose comment gives this output; also the XMODEM entry of Greg Cook's
 // "Catalogue of parametrised CRC algorithms"; recalled from memory).
 func TestCluster3CRC16CheckValue(t *testing.T) {
-	if got := crc16([]byte("123456789")); got != 0x31C3 {
-		t.Fatalf("crc16(123456789) = %#04x, want 0x31c3", got)
+	if got := CRC16([]byte("123456789")); got != 0x31C3 {
+		t.Fatalf("CRC16(123456789) = %#04x, want 0x31c3", got)
 	}
 }
 
@@ -148,8 +116,8 @@ func TestCluster3KeysLandOnTheirMaster(t *testing.T) {
 			if err != nil {
 				t.Fatal(err)
 			}
-			if want := int(crc16([]byte(tc.hashed))) % ClusterSlots; int(got) != want || keySlot(tc.key) != want {
-				t.Fatalf("slot of %q: cluster %d, CRC16(%q) mod 16384 = %d, keySlot %d", tc.key, got, tc.hashed, want, keySlot(tc.key))
+			if want := int(CRC16([]byte(tc.hashed))) % ClusterSlots; int(got) != want || KeySlot(tc.key) != want {
+				t.Fatalf("slot of %q: cluster %d, CRC16(%q) mod 16384 = %d, keySlot %d", tc.key, got, tc.hashed, want, KeySlot(tc.key))
 			}
 		})
 	}
@@ -170,8 +138,8 @@ func TestCluster3KeysLandOnTheirMaster(t *testing.T) {
 			switch {
 			case addr == owner && (err != nil || v != i):
 				t.Fatalf("%s on its master %s: %d, %v; want %d", key, addr, v, err, i)
-			case addr != owner && (err == nil || !strings.HasPrefix(err.Error(), fmt.Sprintf("MOVED %d %s", keySlot(key), owner))):
-				t.Fatalf("%s on %s (master %s): %v, want MOVED %d %s", key, addr, owner, err, keySlot(key), owner)
+			case addr != owner && (err == nil || !strings.HasPrefix(err.Error(), fmt.Sprintf("MOVED %d %s", KeySlot(key), owner))):
+				t.Fatalf("%s on %s (master %s): %v, want MOVED %d %s", key, addr, owner, err, KeySlot(key), owner)
 			}
 		}
 	}
@@ -180,7 +148,7 @@ func TestCluster3KeysLandOnTheirMaster(t *testing.T) {
 	}
 
 	// "key-0" and "key-1" hash to different slots.
-	if keySlot("key-0") == keySlot("key-1") {
+	if KeySlot("key-0") == KeySlot("key-1") {
 		t.Fatal("test keys share a slot")
 	}
 	owner, err := c.MasterOf(ctx, "key-0")

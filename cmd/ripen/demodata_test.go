@@ -110,27 +110,32 @@ func joinLines(ls []demoLine) []byte {
 	return b.Bytes()
 }
 
+// checkGolden compares got with the file at path, first rewriting the file
+// when -update is set.
+func checkGolden(t *testing.T, path string, got []byte) {
+	t.Helper()
+	if *update {
+		if err := os.MkdirAll(filepath.Dir(path), 0o755); err != nil {
+			t.Fatal(err)
+		}
+		if err := os.WriteFile(path, got, 0o644); err != nil {
+			t.Fatal(err)
+		}
+	}
+	want, err := os.ReadFile(path)
+	if err != nil {
+		t.Fatalf("%v (run with -update to create)", err)
+	}
+	if !bytes.Equal(got, want) {
+		t.Fatalf("output differs from %s; rerun with -update if the change is intended", path)
+	}
+}
+
 // TestDemoDataUpToDate keeps testdata/demo in step with its generator; run
 // `go test ./cmd/ripen -run TestDemoDataUpToDate -update` after changing it.
 func TestDemoDataUpToDate(t *testing.T) {
 	clicks, conversions := generateDemo()
 	for name, want := range map[string][]byte{"clicks.jsonl": clicks, "conversions.jsonl": conversions} {
-		path := filepath.Join("..", "..", "testdata", "demo", name)
-		if *update {
-			if err := os.MkdirAll(filepath.Dir(path), 0o755); err != nil {
-				t.Fatal(err)
-			}
-			if err := os.WriteFile(path, want, 0o644); err != nil {
-				t.Fatal(err)
-			}
-			continue
-		}
-		got, err := os.ReadFile(path)
-		if err != nil {
-			t.Fatalf("%v (run with -update to create)", err)
-		}
-		if !bytes.Equal(got, want) {
-			t.Fatalf("%s is stale: run go test ./cmd/ripen -run TestDemoDataUpToDate -update", path)
-		}
+		checkGolden(t, filepath.Join("..", "..", "testdata", "demo", name), want)
 	}
 }

@@ -4,7 +4,6 @@ import (
 	"bytes"
 	"encoding/json"
 	"errors"
-	"os"
 	"path/filepath"
 	"strings"
 	"testing"
@@ -34,22 +33,7 @@ func TestFitGolden(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	golden := filepath.Join("..", "..", "testdata", "golden", "fit_demo.json")
-	if *update {
-		if err := os.MkdirAll(filepath.Dir(golden), 0o755); err != nil {
-			t.Fatal(err)
-		}
-		if err := os.WriteFile(golden, []byte(out), 0o644); err != nil {
-			t.Fatal(err)
-		}
-	}
-	want, err := os.ReadFile(golden)
-	if err != nil {
-		t.Fatalf("%v (run with -update to create)", err)
-	}
-	if out != string(want) {
-		t.Fatalf("ripen fit output differs from %s; rerun with -update if intended", golden)
-	}
+	checkGolden(t, filepath.Join("..", "..", "testdata", "golden", "fit_demo.json"), []byte(out))
 
 	// The document has the promised keys and sane values.
 	var doc struct {

@@ -1,7 +1,6 @@
 package main
 
 import (
-	"bytes"
 	"encoding/json"
 	"os"
 	"path/filepath"
@@ -9,19 +8,10 @@ import (
 	"testing"
 )
 
-// runSimulateCmd runs `simulate` with args and returns stdout and stderr.
+// runSimulateCmd runs `ripen simulate` with args and returns stdout and stderr.
 func runSimulateCmd(t *testing.T, args ...string) (string, string, error) {
 	t.Helper()
-	cmd := newSimulateCmd()
-	var out, errOut bytes.Buffer
-	cmd.SetOut(&out)
-	cmd.SetErr(&errOut)
-	if args == nil {
-		args = []string{} // nil would make cobra read os.Args
-	}
-	cmd.SetArgs(args)
-	err := cmd.Execute()
-	return out.String(), errOut.String(), err
+	return runRipen(t, append([]string{"simulate"}, args...)...)
 }
 
 var smallScenario = filepath.Join("..", "..", "testdata", "scenarios", "small-golden.yaml")
@@ -35,22 +25,7 @@ func TestSimulateGolden(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	golden := filepath.Join("..", "..", "testdata", "golden", "simulate_small.json")
-	if *update {
-		if err := os.MkdirAll(filepath.Dir(golden), 0o755); err != nil {
-			t.Fatal(err)
-		}
-		if err := os.WriteFile(golden, []byte(out), 0o644); err != nil {
-			t.Fatal(err)
-		}
-	}
-	want, err := os.ReadFile(golden)
-	if err != nil {
-		t.Fatalf("%v (run with -update to create)", err)
-	}
-	if out != string(want) {
-		t.Fatalf("ripen simulate output differs from %s; rerun with -update if intended\n%s", golden, out)
-	}
+	checkGolden(t, filepath.Join("..", "..", "testdata", "golden", "simulate_small.json"), []byte(out))
 	// The same seed gives the same document.
 	again, _, err := runSimulateCmd(t, args...)
 	if err != nil || again != out {

@@ -33,8 +33,16 @@ func TestMain(m *testing.M) {
 	if cfg := os.Getenv(childConfigEnv); cfg != "" {
 		os.Exit(childMain(cfg, os.Getenv(childRedisEnv)))
 	}
+	// The outage tests stop Redis on purpose; go-redis would log every
+	// refused dial to stderr and bury the test output.
+	redis.SetLogger(quietRedisLog{})
 	os.Exit(m.Run())
 }
+
+// quietRedisLog drops go-redis's internal log lines in tests.
+type quietRedisLog struct{}
+
+func (quietRedisLog) Printf(context.Context, string, ...any) {}
 
 // childMain runs a Service as `ripen run` does: until SIGTERM or SIGINT,
 // then a graceful stop. It returns the process exit code: 0 after a

@@ -7,8 +7,11 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"runtime"
 	"slices"
 	"strconv"
+	"sync"
+	"sync/atomic"
 	"time"
 
 	"github.com/segmentio/kafka-go"
@@ -57,6 +60,14 @@ func withSeq(body []byte, seq int64) ([]byte, error) {
 // completed tick. A click partition never marked before (a fresh prefix:
 // nothing was applied, every event is held back) is marked at the current
 // tick without refits.
+//
+// Ticks are run in order, each one across every owned partition due for
+// it; the experiments of a tick are refitted concurrently by at most
+// GOMAXPROCS workers (refitTick). Each refit depends only on its
+// experiment's stored state, the tick and the seed derived from both, and
+// an experiment's ticks never overlap, so every published allocation is
+// the same as with one worker; only the order of publications across
+// experiments within a tick may differ.
 func (g *genState) refitOwned(ctx context.Context, prog map[string]map[int]state.PartitionProgress) error {
 	s := g.s
 	cfg := s.config()
@@ -65,7 +76,13 @@ func (g *genState) refitOwned(ctx context.Context, prog map[string]map[int]state
 	if !ok {
 		return nil
 	}
-	var ids []string
+	// due holds the owned click partitions with ticks to refit and, for
+	// each, the next one.
+	type due struct {
+		tp   state.TopicPartition
+		next int64
+	}
+	var pending []due
 	for _, tp := range g.assigned {
 		if tp.Topic != g.meta.clickTopic {
 			continue
@@ -82,37 +99,122 @@ func (g *genState) refitOwned(ctx context.Context, prog map[string]map[int]state
 			}
 			continue
 		}
-		for tick := last + period; tick <= through; tick += period {
-			if ids == nil {
-				if err := s.retry(ctx, "list experiments", func(ctx context.Context) error {
-					var err error
-					ids, err = s.store.Experiments(ctx)
-					return err
-				}); err != nil {
-					return err
-				}
-			}
-			for _, id := range ids {
-				if refitPartition(id, g.meta.clickParts) != tp.Partition {
-					continue
-				}
-				if err := s.refit(ctx, id, tick); err != nil {
-					if ctx.Err() != nil {
-						return err
-					}
-					// A bad fit must not stop consumption (nor the
-					// group's barrier); the next tick tries again.
-					s.log.Error("refit", zap.String("experiment", id), zap.Int64("tick", tick), zap.Error(err))
-				}
-			}
-			if err := s.retry(ctx, "mark refitted", func(ctx context.Context) error {
-				return s.store.MarkRefitted(ctx, tp.Topic, tp.Partition, tick)
+		if last+period <= through {
+			pending = append(pending, due{tp: tp, next: last + period})
+		}
+	}
+	var ids []string
+	for len(pending) > 0 {
+		if ids == nil {
+			if err := s.retry(ctx, "list experiments", func(ctx context.Context) error {
+				var err error
+				ids, err = s.store.Experiments(ctx)
+				return err
 			}); err != nil {
 				return err
 			}
 		}
+		tick := pending[0].next
+		for _, d := range pending[1:] {
+			tick = min(tick, d.next)
+		}
+		parts := map[int]bool{}
+		for _, d := range pending {
+			if d.next == tick {
+				parts[d.tp.Partition] = true
+			}
+		}
+		var batch []string
+		for _, id := range ids {
+			if parts[refitPartition(id, g.meta.clickParts)] {
+				batch = append(batch, id)
+			}
+		}
+		if err := s.refitTick(ctx, batch, tick); err != nil {
+			return err
+		}
+		kept := pending[:0]
+		for _, d := range pending {
+			if d.next == tick {
+				if err := s.retry(ctx, "mark refitted", func(ctx context.Context) error {
+					return s.store.MarkRefitted(ctx, d.tp.Topic, d.tp.Partition, tick)
+				}); err != nil {
+					return err
+				}
+				d.next += period
+			}
+			if d.next <= through {
+				kept = append(kept, d)
+			}
+		}
+		pending = kept
 	}
 	return nil
+}
+
+// refitTick refits experiments ids as of tick, at most refitWorkers at a
+// time. A failed refit is logged and does not stop the others (nor
+// consumption, nor the group's barrier: the next tick tries again); the
+// error returned is the first one met after ctx ended.
+func (s *Service) refitTick(ctx context.Context, ids []string, tick int64) error {
+	return forEachBounded(refitWorkers(), len(ids), func(i int) error {
+		id := ids[i]
+		if err := s.refit(ctx, id, tick); err != nil {
+			if ctx.Err() != nil {
+				return err
+			}
+			s.log.Error("refit", zap.String("experiment", id), zap.Int64("tick", tick), zap.Error(err))
+		}
+		return nil
+	})
+}
+
+// refitWorkers is the number of experiments refitted at once: one per
+// processor the Go scheduler uses (GOMAXPROCS), as a refit is mostly CPU.
+func refitWorkers() int {
+	return max(1, runtime.GOMAXPROCS(0))
+}
+
+// forEachBounded calls fn(0), ..., fn(n-1) on at most workers goroutines
+// and waits for them. After fn returns an error no further index is
+// started; the first error is returned.
+func forEachBounded(workers, n int, fn func(i int) error) error {
+	workers = max(1, min(workers, n))
+	if n == 0 {
+		return nil
+	}
+	if workers == 1 {
+		for i := range n {
+			if err := fn(i); err != nil {
+				return err
+			}
+		}
+		return nil
+	}
+	var (
+		next    atomic.Int64
+		errOnce sync.Once
+		first   error
+		failed  atomic.Bool
+		wg      sync.WaitGroup
+	)
+	for range workers {
+		wg.Go(func() {
+			for !failed.Load() {
+				i := int(next.Add(1) - 1)
+				if i >= n {
+					return
+				}
+				if err := fn(i); err != nil {
+					errOnce.Do(func() { first = err })
+					failed.Store(true)
+					return
+				}
+			}
+		})
+	}
+	wg.Wait()
+	return first
 }
 
 // refit loads one experiment, evaluates it as of tick (cold-started, so

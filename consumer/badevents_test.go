@@ -191,6 +191,11 @@ func TestBadEventsDeadLettered(t *testing.T) {
 			t.Errorf("ripen_events_rejected_total{reason=%q} = %v, want %d", r, got, n)
 		}
 	}
+	// Every expired orphan was parked first (others may have been parked
+	// and joined later, depending on read order).
+	if parked, expired := gaugeValue(t, reg, "ripen_orphans_parked_total", nil), wantReasons[ReasonOrphanExpired]; expired == 0 || parked < float64(expired) {
+		t.Errorf("ripen_orphans_parked_total = %v with %d expired orphans (want >= and the corpus to hold some)", parked, expired)
+	}
 
 	// Exactly the valid events are counted.
 	clickArm := map[string]string{}

@@ -224,6 +224,7 @@ func TestMetricsNamesTypesAndLint(t *testing.T) {
 		"ripen_redis_up":                    {dto.MetricType_GAUGE, nil},
 		"ripen_experiments":                 {dto.MetricType_GAUGE, nil},
 		"ripen_holdback_overflows_total":    {dto.MetricType_COUNTER, nil},
+		"ripen_orphans_parked_total":        {dto.MetricType_COUNTER, nil},
 	}
 	fams, err := reg.Gather()
 	if err != nil {

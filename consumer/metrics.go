@@ -35,6 +35,9 @@ type Metrics struct {
 	// because pipeline.holdback_cap was reached; each may make a refit see
 	// events after its tick, so replays may differ.
 	HoldbackOverflows prometheus.Counter
+	// OrphansParked counts conversions parked to wait for their click,
+	// the costly path of the join.
+	OrphansParked prometheus.Counter
 }
 
 // knownReasons are the rejection reasons pre-set to zero in EventsRejected
@@ -101,6 +104,10 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 			Name: "ripen_holdback_overflows_total",
 			Help: "Flushes that applied held-back events early because the hold-back cap was reached.",
 		}),
+		OrphansParked: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "ripen_orphans_parked_total",
+			Help: "Conversions parked in Redis until their click arrives.",
+		}),
 	}
 	for _, r := range knownReasons {
 		m.EventsRejected.WithLabelValues(string(r))
@@ -108,7 +115,7 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 	if reg != nil {
 		reg.MustRegister(m.EventsConsumed, m.EventsRejected, m.DeadLetterPublished,
 			m.FlushDuration, m.RefitDuration, m.ConsumerLag, m.AllocationsPublished,
-			m.Watermark, m.RedisUp, m.Experiments, m.HoldbackOverflows)
+			m.Watermark, m.RedisUp, m.Experiments, m.HoldbackOverflows, m.OrphansParked)
 	}
 	return m
 }

@@ -412,8 +412,13 @@ func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 				continue
 			}
 			db.conversion(e, r.Click.Arm, cv.v.ClickID, org, cv.m.tp, cv.m.offset, r.Click.TS, cv.v.TS, false)
-		case state.LookupParked, state.LookupParkedBefore:
+		case state.LookupParked:
 			// Joined when the click comes, or settled by the sweep.
+			if s.metrics != nil {
+				s.metrics.OrphansParked.Inc()
+			}
+		case state.LookupParkedBefore:
+			// A redelivery of a conversion already parked.
 		case state.LookupDuplicate:
 			refuse(org, reject(ReasonDuplicateConversion, "click %q already has a conversion waiting for it (%s)", cv.v.ClickID, r.Origin))
 		case state.LookupCapExceeded:

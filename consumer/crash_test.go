@@ -15,8 +15,6 @@ import (
 	"testing"
 	"time"
 
-	"github.com/segmentio/kafka-go"
-
 	"ripen/state"
 )
 
@@ -128,43 +126,6 @@ func waitProgress(t *testing.T, st *state.Store, topics map[string]int, want int
 			t.Fatalf("resume offsets at %d of %d messages after 60s; child log:\n%s", got, want, c.log())
 		}
 		time.Sleep(2 * time.Millisecond)
-	}
-}
-
-// checkCommittedEqualsResume checks that the offsets the group committed
-// to Kafka equal the resume offsets in Redis, partition by partition, and
-// that something was committed.
-func checkCommittedEqualsResume(t *testing.T, env *testEnv, cfg Config, partitions int) {
-	t.Helper()
-	client := &kafka.Client{Addr: kafka.TCP(env.brokers...)}
-	ctx, cancel := context.WithTimeout(context.Background(), 10*time.Second)
-	defer cancel()
-	parts := make([]int, partitions)
-	for i := range parts {
-		parts[i] = i
-	}
-	resp, err := client.OffsetFetch(ctx, &kafka.OffsetFetchRequest{GroupID: cfg.Kafka.Group,
-		Topics: map[string][]int{cfg.Kafka.ClickTopic: parts, cfg.Kafka.ConversionTopic: parts}})
-	if err != nil {
-		t.Fatal(err)
-	}
-	committed := 0
-	for topic, ps := range resp.Topics {
-		for _, p := range ps {
-			want, err := env.store.Resume(ctx, topic, p.Partition)
-			if err != nil {
-				want = -1
-			}
-			if p.CommittedOffset >= 0 {
-				committed++
-			}
-			if p.CommittedOffset != want {
-				t.Errorf("%s/%d: committed %d, resume %d", topic, p.Partition, p.CommittedOffset, want)
-			}
-		}
-	}
-	if committed == 0 {
-		t.Error("nothing committed")
 	}
 }
 

@@ -175,32 +175,7 @@ func TestGracefulShutdown(t *testing.T) {
 	}
 
 	// Committed offsets equal the resume offsets.
-	client := &kafka.Client{Addr: kafka.TCP(env.brokers...)}
-	ctx, cancel := context.WithTimeout(context.Background(), 10*time.Second)
-	defer cancel()
-	topics := map[string][]int{cfg.Kafka.ClickTopic: {0, 1, 2}, cfg.Kafka.ConversionTopic: {0, 1, 2}}
-	resp, err := client.OffsetFetch(ctx, &kafka.OffsetFetchRequest{GroupID: cfg.Kafka.Group, Topics: topics})
-	if err != nil {
-		t.Fatal(err)
-	}
-	committed := 0
-	for topic, parts := range resp.Topics {
-		for _, p := range parts {
-			want, err := env.store.Resume(ctx, topic, p.Partition)
-			if err != nil {
-				want = -1
-			}
-			if p.CommittedOffset >= 0 {
-				committed++
-			}
-			if p.CommittedOffset != want {
-				t.Errorf("%s/%d: committed %d, resume %d", topic, p.Partition, p.CommittedOffset, want)
-			}
-		}
-	}
-	if committed == 0 {
-		t.Error("nothing committed")
-	}
+	checkCommittedEqualsResume(t, env, cfg, 3)
 
 	_, stop = env.start(t, cfg, testLogger(t), testHooks{}, nil)
 	env.finish(t, cfg, s)

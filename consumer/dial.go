@@ -82,16 +82,26 @@ func NewSASLMechanism(s SASLConfig) (sasl.Mechanism, error) {
 	return nil, fmt.Errorf("sasl: unknown mechanism %q (valid: %s, %s, %s)", s.Mechanism, SASLPlain, SASLScramSHA256, SASLScramSHA512)
 }
 
-// KafkaDialer builds the dialer used by readers and the consumer group,
-// with k's TLS and SASL settings.
-func KafkaDialer(k KafkaConfig) (*kafka.Dialer, error) {
+// kafkaSecurity builds k's TLS config and SASL mechanism, shared by the
+// dialer and the transport.
+func kafkaSecurity(k KafkaConfig) (*tls.Config, sasl.Mechanism, error) {
 	tc, err := NewTLSConfig(k.TLS)
 	if err != nil {
-		return nil, fmt.Errorf("kafka: %w", err)
+		return nil, nil, fmt.Errorf("kafka: %w", err)
 	}
 	mech, err := NewSASLMechanism(k.SASL)
 	if err != nil {
-		return nil, fmt.Errorf("kafka: %w", err)
+		return nil, nil, fmt.Errorf("kafka: %w", err)
+	}
+	return tc, mech, nil
+}
+
+// KafkaDialer builds the dialer used by readers and the consumer group,
+// with k's TLS and SASL settings.
+func KafkaDialer(k KafkaConfig) (*kafka.Dialer, error) {
+	tc, mech, err := kafkaSecurity(k)
+	if err != nil {
+		return nil, err
 	}
 	return &kafka.Dialer{
 		ClientID:      ClientID,
@@ -105,13 +115,9 @@ func KafkaDialer(k KafkaConfig) (*kafka.Dialer, error) {
 // KafkaTransport builds the transport used by writers, with k's TLS and
 // SASL settings.
 func KafkaTransport(k KafkaConfig) (*kafka.Transport, error) {
-	tc, err := NewTLSConfig(k.TLS)
+	tc, mech, err := kafkaSecurity(k)
 	if err != nil {
-		return nil, fmt.Errorf("kafka: %w", err)
-	}
-	mech, err := NewSASLMechanism(k.SASL)
-	if err != nil {
-		return nil, fmt.Errorf("kafka: %w", err)
+		return nil, err
 	}
 	return &kafka.Transport{
 		ClientID:    ClientID,

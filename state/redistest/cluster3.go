@@ -168,34 +168,12 @@ func (n *clusterNode) launch(bin string) error {
 		"--logfile", n.logPath(),
 	)
 	cmd.Dir = n.dir
-	dieWithParent(cmd)
-	if err := cmd.Start(); err != nil {
-		return fmt.Errorf("exec %s: %w", bin, err)
+	exited, err := startServer(cmd, n.port, n.logPath(), time.Now().Add(startTimeout))
+	if err != nil {
+		return err
 	}
-	exited := make(chan struct{})
-	var waitErr error
-	go func() {
-		waitErr = cmd.Wait()
-		close(exited)
-	}()
-	deadline := time.Now().Add(startTimeout)
-	for {
-		select {
-		case <-exited:
-			return fmt.Errorf("server on port %d exited early (%v): %s", n.port, waitErr, tail(n.logPath()))
-		default:
-		}
-		if ping(n.port) == nil {
-			n.cmd, n.exited = cmd, exited
-			return nil
-		}
-		if time.Now().After(deadline) {
-			_ = cmd.Process.Kill()
-			<-exited
-			return fmt.Errorf("no PING answer on port %d within %v: %s", n.port, startTimeout, tail(n.logPath()))
-		}
-		time.Sleep(10 * time.Millisecond)
-	}
+	n.cmd, n.exited = cmd, exited
+	return nil
 }
 
 // waitHealthy polls CLUSTER INFO on every node until each reports

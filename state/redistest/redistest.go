@@ -176,9 +176,29 @@ func (s *Server) launch() error {
 			"--cluster-config-file", filepath.Join(s.dir, fmt.Sprintf("nodes-%d.conf", s.port)))
 	}
 	cmd.Dir = s.dir
+	deadline := time.Now().Add(startTimeout)
+	exited, err := startServer(cmd, s.port, logPath, deadline)
+	if err != nil {
+		return err
+	}
+	if s.cluster {
+		if err := ownAllSlots(s.port, deadline); err != nil {
+			_ = cmd.Process.Kill()
+			<-exited
+			return fmt.Errorf("cluster setup: %w: %s", err, tail(logPath))
+		}
+	}
+	s.cmd, s.exited = cmd, exited
+	return nil
+}
+
+// startServer starts the redis-server of cmd (tied to this process's life)
+// and waits until it answers PING on port. It returns the channel closed
+// when the process exits; on failure the process is gone.
+func startServer(cmd *exec.Cmd, port int, logPath string, deadline time.Time) (chan struct{}, error) {
 	dieWithParent(cmd)
 	if err := cmd.Start(); err != nil {
-		return fmt.Errorf("exec %s: %w", s.bin, err)
+		return nil, fmt.Errorf("exec %s: %w", cmd.Path, err)
 	}
 	exited := make(chan struct{})
 	var waitErr error
@@ -186,28 +206,19 @@ func (s *Server) launch() error {
 		waitErr = cmd.Wait()
 		close(exited)
 	}()
-	deadline := time.Now().Add(startTimeout)
 	for {
 		select {
 		case <-exited:
-			return fmt.Errorf("server exited early (%v): %s", waitErr, tail(logPath))
+			return nil, fmt.Errorf("server on port %d exited early (%v): %s", port, waitErr, tail(logPath))
 		default:
 		}
-		if ping(s.port) == nil {
-			if s.cluster {
-				if err := ownAllSlots(s.port, deadline); err != nil {
-					_ = cmd.Process.Kill()
-					<-exited
-					return fmt.Errorf("cluster setup: %w: %s", err, tail(logPath))
-				}
-			}
-			s.cmd, s.exited = cmd, exited
-			return nil
+		if ping(port) == nil {
+			return exited, nil
 		}
 		if time.Now().After(deadline) {
 			_ = cmd.Process.Kill()
 			<-exited
-			return fmt.Errorf("no PING answer within %v: %s", startTimeout, tail(logPath))
+			return nil, fmt.Errorf("no PING answer on port %d within %v: %s", port, startTimeout, tail(logPath))
 		}
 		time.Sleep(10 * time.Millisecond)
 	}

@@ -43,6 +43,32 @@ type AppliedOffset struct {
 // loadAttempts bounds Load's retries when arms are added while it reads.
 const loadAttempts = 16
 
+// runLoad reads the experiment's arm names and runs the load script over
+// its meta, arm set, offsets and arm hashes in one atomic call. The reply
+// starts with a status: "ok", "missing" (no meta hash) or "retry" (the
+// arm set changed since it was read).
+func (s *Store) runLoad(ctx context.Context, op, experiment string) (names []string, reply []any, err error) {
+	names, err = s.rdb.SMembers(ctx, s.keys.arms(experiment)).Result()
+	if err != nil {
+		return nil, nil, redisFailure(op, fmt.Errorf("experiment %q: arms: %w", experiment, err))
+	}
+	slices.Sort(names)
+	keys := []string{s.keys.meta(experiment), s.keys.arms(experiment), s.keys.offsets(experiment)}
+	args := make([]any, len(names))
+	for i, n := range names {
+		keys = append(keys, s.keys.arm(experiment, n))
+		args[i] = n
+	}
+	reply, err = loadScript.Run(ctx, s.rdb, keys, args...).Slice()
+	if err != nil {
+		return nil, nil, redisFailure(op, fmt.Errorf("experiment %q: %w", experiment, err))
+	}
+	if len(reply) == 0 {
+		return nil, nil, permanent(op, fmt.Errorf("experiment %q: %w: empty load reply", experiment, ErrCorrupt))
+	}
+	return names, reply, nil
+}
+
 // Load reads an experiment's state in one atomic script call and rebuilds
 // each arm's estimator state, canonical at the stored watermark. It returns
 // an error matching ErrNotFound if nothing was applied to the experiment.
@@ -52,20 +78,9 @@ func (s *Store) Load(ctx context.Context, experiment string) (*Experiment, error
 		return nil, permanent(op, err)
 	}
 	for range loadAttempts {
-		names, err := s.rdb.SMembers(ctx, s.keys.arms(experiment)).Result()
+		names, reply, err := s.runLoad(ctx, op, experiment)
 		if err != nil {
-			return nil, redisFailure(op, fmt.Errorf("experiment %q: arms: %w", experiment, err))
-		}
-		slices.Sort(names)
-		keys := []string{s.keys.meta(experiment), s.keys.arms(experiment), s.keys.offsets(experiment)}
-		args := make([]any, len(names))
-		for i, n := range names {
-			keys = append(keys, s.keys.arm(experiment, n))
-			args[i] = n
-		}
-		reply, err := loadScript.Run(ctx, s.rdb, keys, args...).Slice()
-		if err != nil {
-			return nil, redisFailure(op, fmt.Errorf("experiment %q: %w", experiment, err))
+			return nil, err
 		}
 		status, _ := reply[0].(string)
 		switch status {

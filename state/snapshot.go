@@ -216,20 +216,9 @@ func (s *Store) ExportExperiment(ctx context.Context, id string) (*ExperimentSna
 func (s *Store) exportExperiment(ctx context.Context, id string) (*ExperimentSnapshot, bool, error) {
 	const op = "export"
 	for range loadAttempts {
-		names, err := s.rdb.SMembers(ctx, s.keys.arms(id)).Result()
+		names, reply, err := s.runLoad(ctx, op, id)
 		if err != nil {
-			return nil, false, redisFailure(op, fmt.Errorf("experiment %q: arms: %w", id, err))
-		}
-		slices.Sort(names)
-		keys := []string{s.keys.meta(id), s.keys.arms(id), s.keys.offsets(id)}
-		args := make([]any, len(names))
-		for i, n := range names {
-			keys = append(keys, s.keys.arm(id, n))
-			args[i] = n
-		}
-		reply, err := loadScript.Run(ctx, s.rdb, keys, args...).Slice()
-		if err != nil {
-			return nil, false, redisFailure(op, fmt.Errorf("experiment %q: %w", id, err))
+			return nil, false, err
 		}
 		status, _ := reply[0].(string)
 		switch status {

@@ -444,35 +444,29 @@ func benchPipeline(ctx context.Context, base consumer.Config, rdb *redis.Client,
 // meanMemoryUsage averages MEMORY USAGE over the keys matching pattern
 // (at most limit keys; 0: all).
 func meanMemoryUsage(ctx context.Context, rdb *redis.Client, pattern string, limit int) (float64, error) {
-	var sum, n int64
-	iter := rdb.Scan(ctx, 0, pattern, 1000).Iterator()
-	for iter.Next(ctx) && (limit == 0 || n < int64(limit)) {
-		b, err := rdb.MemoryUsage(ctx, iter.Val(), 0).Result() // SAMPLES 0: every field
-		if err != nil {
-			return 0, fmt.Errorf("bench: MEMORY USAGE %s: %w", iter.Val(), err)
-		}
-		sum += b
-		n++
-	}
-	if err := iter.Err(); err != nil {
-		return 0, fmt.Errorf("bench: scan %s: %w", pattern, err)
-	}
-	if n == 0 {
-		return 0, fmt.Errorf("bench: no key matches %s", pattern)
-	}
-	return float64(sum) / float64(n), nil
+	return meanOverKeys(ctx, rdb, pattern, limit, "MEMORY USAGE", func(key string) (int64, error) {
+		return rdb.MemoryUsage(ctx, key, 0).Result() // SAMPLES 0: every field
+	})
 }
 
 // meanHashLen averages HLEN over the hashes matching pattern.
 func meanHashLen(ctx context.Context, rdb *redis.Client, pattern string) (float64, error) {
+	return meanOverKeys(ctx, rdb, pattern, 0, "HLEN", func(key string) (int64, error) {
+		return rdb.HLen(ctx, key).Result()
+	})
+}
+
+// meanOverKeys averages measure over the keys matching pattern (at most
+// limit keys; 0: all); what names the measure in errors.
+func meanOverKeys(ctx context.Context, rdb *redis.Client, pattern string, limit int, what string, measure func(key string) (int64, error)) (float64, error) {
 	var sum, n int64
 	iter := rdb.Scan(ctx, 0, pattern, 1000).Iterator()
-	for iter.Next(ctx) {
-		l, err := rdb.HLen(ctx, iter.Val()).Result()
+	for iter.Next(ctx) && (limit == 0 || n < int64(limit)) {
+		v, err := measure(iter.Val())
 		if err != nil {
-			return 0, fmt.Errorf("bench: HLEN %s: %w", iter.Val(), err)
+			return 0, fmt.Errorf("bench: %s %s: %w", what, iter.Val(), err)
 		}
-		sum += l
+		sum += v
 		n++
 	}
 	if err := iter.Err(); err != nil {

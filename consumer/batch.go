@@ -95,6 +95,7 @@ func (b *batch) value(tp state.TopicPartition, offset int64) ([]byte, bool) {
 type expInfo struct {
 	id       string
 	layout   estimator.Layout
+	place    estimator.Placement // layout's placement, built once
 	windowMs int64
 	arms     map[string]bool
 	// applied is the last offset applied per partition; absent means none.
@@ -158,7 +159,7 @@ func (b *deltaBuilder) conversion(e *expInfo, arm, clickID, org string, tp state
 	d := convTS - clickTS
 	b.contribs[e.id] = append(b.contribs[e.id], contrib{
 		arm: arm, tp: tp, offset: offset, origin: org, guarded: withClick, clickTS: clickTS,
-		conv: &state.ConversionDelta{ClickID: clickID, Origin: org, DelayBin: e.layout.DelayBin(d), DelayMs: d, WithClick: withClick},
+		conv: &state.ConversionDelta{ClickID: clickID, Origin: org, DelayBin: e.place.DelayBin(d), DelayMs: d, WithClick: withClick},
 	})
 }
 
@@ -232,7 +233,7 @@ func (b *deltaBuilder) build(id string, bt *batch) *state.ExperimentDelta {
 			d.Arms[c.arm] = a
 			clicks[c.arm] = map[estimator.BucketKey]uint64{}
 		}
-		key, matured := e.layout.PendingBucket(c.clickTS, b.wm)
+		key, matured := e.place.PendingBucket(c.clickTS, b.wm)
 		n++
 		if c.conv == nil {
 			if matured {

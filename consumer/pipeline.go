@@ -707,6 +707,7 @@ func (g *genState) experiment(ctx context.Context, cfg Config, id, arm string) (
 			}
 		}
 		e.windowMs = e.layout.Window.Milliseconds()
+		e.place = e.layout.Placement()
 		g.exps[id] = e
 	}
 	if !e.arms[arm] {

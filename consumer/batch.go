@@ -26,6 +26,26 @@ type fetched struct {
 	dec *decoded
 }
 
+// decode decodes m by its topic and sets its event time. The partition
+// readers call it, so that decoding runs on one goroutine per partition,
+// beside the flush, rather than on the pipeline's.
+func (m *fetched) decode(cfg Config) {
+	switch m.tp.Topic {
+	case cfg.Kafka.ClickTopic:
+		d := &decoded{}
+		if d.click, d.err = DecodeClick(m.value); d.err == nil {
+			m.ts, m.hasTS = d.click.TS, true
+		}
+		m.dec = d
+	case cfg.Kafka.ConversionTopic:
+		d := &decoded{}
+		if d.conv, d.err = DecodeConversion(m.value); d.err == nil {
+			m.ts, m.hasTS = d.conv.TS, true
+		}
+		m.dec = d
+	}
+}
+
 // decoded is a message decoded by its topic: click or conv is set, or err
 // says why it does not decode.
 type decoded struct {

@@ -25,6 +25,9 @@ const (
 	fetchBufferFactor = 2 // channel capacity, in units of FlushEvents
 	// barrierInterval is the step period while events are held back.
 	barrierInterval = 100 * time.Millisecond
+	// catchUpSteps bounds the steps taken back to back while each one
+	// moves towards the barrier and events are still held back.
+	catchUpSteps = 64
 )
 
 // consume joins the consumer group over the click and conversion topics
@@ -229,7 +232,7 @@ func (s *Service) pipeline(ctx, genCtx context.Context, gen *kafka.Generation, d
 		readers.Add(1)
 		gen.Start(func(context.Context) {
 			defer readers.Done()
-			s.readPartition(fetchCtx, dialer, cfg.Kafka.Brokers, tp, start[tp], in, g.own[tp].gate)
+			s.readPartition(fetchCtx, dialer, cfg, tp, start[tp], in, g.own[tp].gate)
 		})
 	}
 	defer func() {
@@ -264,7 +267,33 @@ func (s *Service) pipeline(ctx, genCtx context.Context, gen *kafka.Generation, d
 	defer timer.Stop()
 	step := func(sctx context.Context) error {
 		pending = 0
-		return g.step(sctx)
+		for i := 1; ; i++ {
+			before, times := g.advances, g.times
+			if err := g.step(sctx); err != nil {
+				return err
+			}
+			// While events wait for the barrier and this step moved
+			// towards it (released events, swept, refitted a tick, or
+			// learnt of the group's progress), step again at once: a
+			// replay then crosses a tick in a few back-to-back steps,
+			// not one per barrierInterval.
+			if (g.advances == before && g.times == times) || i == catchUpSteps {
+				return nil
+			}
+			// Take in what the readers fetched meanwhile (without
+			// waiting), so that the next step can release it.
+			for drained := false; !drained; {
+				select {
+				case m := <-in:
+					g.receive(m, cfg, time.Now())
+				default:
+					drained = true
+				}
+			}
+			if g.heldTotal == 0 {
+				return nil
+			}
+		}
 	}
 	// final steps once more after fetching stopped (held events stay
 	// unapplied; their offsets are read again by the next owner).
@@ -414,11 +443,12 @@ func (s *Service) endGeneration(ctx context.Context, err error) error {
 	return err
 }
 
-// readPartition fetches one partition from offset into out until ctx ends,
-// waiting while gate is closed.
-func (s *Service) readPartition(ctx context.Context, dialer *kafka.Dialer, brokers []string, tp state.TopicPartition, offset int64, out chan<- fetched, gate *readGate) {
+// readPartition fetches one partition from offset, decodes each message
+// (see fetched.decode) and sends it into out until ctx ends, waiting while
+// gate is closed.
+func (s *Service) readPartition(ctx context.Context, dialer *kafka.Dialer, cfg Config, tp state.TopicPartition, offset int64, out chan<- fetched, gate *readGate) {
 	r := kafka.NewReader(kafka.ReaderConfig{
-		Brokers:   brokers,
+		Brokers:   cfg.Kafka.Brokers,
 		Topic:     tp.Topic,
 		Partition: tp.Partition,
 		Dialer:    dialer,
@@ -446,8 +476,10 @@ func (s *Service) readPartition(ctx context.Context, dialer *kafka.Dialer, broke
 			return
 		}
 		gate.add(1)
+		f := fetched{tp: tp, offset: m.Offset, value: m.Value, hwm: m.HighWaterMark}
+		f.decode(cfg)
 		select {
-		case out <- fetched{tp: tp, offset: m.Offset, value: m.Value, hwm: m.HighWaterMark}:
+		case out <- f:
 		case <-ctx.Done():
 			return
 		}

@@ -42,6 +42,9 @@ type genState struct {
 	times groupTimes
 	// heldTotal counts the held messages of every owned partition.
 	heldTotal int
+	// advances counts what moves the group's barrier: steps that released
+	// held events, sweeps that advanced, ticks marked refitted.
+	advances int
 	// swept is the last tick through which each owned conversion
 	// partition's due orphans were settled (from its record at first).
 	swept map[state.TopicPartition]int64
@@ -143,19 +146,8 @@ type flushResult struct {
 // receive records a message read from an owned partition: it is held
 // until release lets it through.
 func (g *genState) receive(m fetched, cfg Config, now time.Time) {
-	switch m.tp.Topic {
-	case cfg.Kafka.ClickTopic:
-		d := &decoded{}
-		if d.click, d.err = DecodeClick(m.value); d.err == nil {
-			m.ts, m.hasTS = d.click.TS, true
-		}
-		m.dec = d
-	case cfg.Kafka.ConversionTopic:
-		d := &decoded{}
-		if d.conv, d.err = DecodeConversion(m.value); d.err == nil {
-			m.ts, m.hasTS = d.conv.TS, true
-		}
-		m.dec = d
+	if m.dec == nil {
+		m.decode(cfg)
 	}
 	p := g.own[m.tp]
 	if p == nil {
@@ -204,6 +196,9 @@ func (g *genState) release(cfg Config) (b *batch, overflow bool) {
 		}
 		p.held = slices.Delete(p.held, 0, n)
 		g.heldTotal -= n
+		if n > 0 {
+			g.advances++
+		}
 		p.gate.add(-n)
 	}
 	return b, overflow
@@ -573,6 +568,7 @@ func (g *genState) sweep(ctx context.Context) error {
 		if last, ok := g.swept[tp]; ok && last != noTime && wm <= last {
 			continue
 		}
+		g.advances++
 		if vacuous {
 			g.swept[tp] = wm
 			continue

@@ -141,6 +141,7 @@ func (g *genState) refitOwned(ctx context.Context, prog map[string]map[int]state
 				}); err != nil {
 					return err
 				}
+				g.advances++
 				d.next += period
 			}
 			if d.next <= through {

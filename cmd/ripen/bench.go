@@ -1,12 +1,14 @@
 package main
 
 import (
+	"cmp"
 	"context"
 	"encoding/json"
 	"errors"
 	"fmt"
 	"io"
 	"maps"
+	"math"
 	"math/rand/v2"
 	"net"
 	"os"
@@ -18,6 +20,8 @@ import (
 	"text/tabwriter"
 	"time"
 
+	"github.com/prometheus/client_golang/prometheus"
+	dto "github.com/prometheus/client_model/go"
 	"github.com/redis/go-redis/v9"
 	"github.com/segmentio/kafka-go"
 	"github.com/spf13/cobra"
@@ -25,6 +29,7 @@ import (
 
 	"ripen/consumer"
 	"ripen/consumer/kafkatest"
+	"ripen/estimator"
 	"ripen/state"
 )
 
@@ -56,6 +61,16 @@ type benchResult struct {
 	PipelineEPS float64 `json:"pipeline_eps"`
 	BareEPS     float64 `json:"bare_eps"`
 	Ratio       float64 `json:"ratio"`
+	// TickedEPS and TickedRatio are the same for the service with its
+	// default refit period, so that the event-time ticks (hold-back,
+	// group barrier, per-tick loads, compaction and publication) run as
+	// in a replay; only the model fit is left out (benchRefit).
+	TickedEPS   float64 `json:"ticked_pipeline_eps"`
+	TickedRatio float64 `json:"ticked_ratio"`
+	// OrphansParked counts the conversions the last ingest and ticked
+	// runs parked to wait for their click (ripen_orphans_parked_total).
+	OrphansParked       float64 `json:"orphans_parked"`
+	TickedOrphansParked float64 `json:"ticked_orphans_parked"`
 	// Bytes are MEMORY USAGE (SAMPLES 0) averages over the keys of the
 	// last pipeline run: arm hashes as the pipeline left them (not
 	// compacted), and click index entries (one per pending click).
@@ -88,6 +103,13 @@ type benchRun struct {
 	BareSeconds     float64 `json:"bare_seconds"`
 	PipelineSeconds float64 `json:"pipeline_seconds"`
 	Ratio           float64 `json:"ratio"`
+	// RedisCPUSeconds is the redis-server's CPU time (user + system,
+	// INFO cpu) during the pipeline run.
+	RedisCPUSeconds float64 `json:"redis_cpu_seconds"`
+	// Ticked* are the ticked run's (see benchResult.TickedEPS).
+	TickedSeconds         float64 `json:"ticked_seconds"`
+	TickedRatio           float64 `json:"ticked_ratio"`
+	TickedRedisCPUSeconds float64 `json:"ticked_redis_cpu_seconds"`
 }
 
 func newBenchCmd() *cobra.Command {
@@ -154,7 +176,9 @@ const benchT0 int64 = 1938124800000
 // genBenchEvents returns n events: clicks of three invented experiments
 // of four arms each, one every 100 ms of event time, about 8% of them
 // converting after an exponential delay (mean 6 hours, within the default
-// 7-day window).
+// 7-day window). Each topic is in event-time order, as a producer that
+// writes events when they happen leaves it: the conversions are sorted by
+// their own time, not by their clicks'.
 func genBenchEvents(n int) benchEvents {
 	r := rand.New(rand.NewPCG(2031, 6))
 	ev := benchEvents{experiments: map[string][]string{
@@ -164,17 +188,22 @@ func genBenchEvents(n int) benchEvents {
 	}}
 	ids := slices.Sorted(maps.Keys(ev.experiments))
 	meanDelay := 6 * float64(time.Hour.Milliseconds())
-	for i := 0; len(ev.clicks)+len(ev.convs) < n; i++ {
+	var convs []consumer.Conversion
+	for i := 0; len(ev.clicks)+len(convs) < n; i++ {
 		exp := ids[i%len(ids)]
 		arms := ev.experiments[exp]
 		arm := arms[r.IntN(len(arms))]
 		ts := benchT0 + int64(i)*100
 		id := "k" + strconv.Itoa(i)
 		ev.clicks = append(ev.clicks, benchMessage(id, consumer.Click{ClickID: id, Experiment: exp, Arm: arm, TS: ts}))
-		if len(ev.clicks)+len(ev.convs) < n && r.Float64() < 0.08 {
+		if len(ev.clicks)+len(convs) < n && r.Float64() < 0.08 {
 			d := int64(r.ExpFloat64() * meanDelay)
-			ev.convs = append(ev.convs, benchMessage(id, consumer.Conversion{ClickID: id, TS: ts + d}))
+			convs = append(convs, consumer.Conversion{ClickID: id, TS: ts + d})
 		}
+	}
+	slices.SortStableFunc(convs, func(a, b consumer.Conversion) int { return cmp.Compare(a.TS, b.TS) })
+	for _, c := range convs {
+		ev.convs = append(ev.convs, benchMessage(c.ClickID, c))
 	}
 	return ev
 }
@@ -221,7 +250,7 @@ func runBench(ctx context.Context, o benchOptions) (*benchResult, error) {
 	rdb := redis.NewClient(&redis.Options{Addr: rs.addr})
 	defer rdb.Close()
 	res := &benchResult{Events: o.Events, BytesMethod: "MEMORY USAGE SAMPLES 0"}
-	var bare, pipe, ratios []float64
+	var bare, pipe, ratios, ticked, tickedRatios []float64
 	var lastPrefix string
 	for round := range o.Rounds {
 		b, err := benchBare(ctx, brokers, ends)
@@ -229,16 +258,31 @@ func runBench(ctx context.Context, o benchOptions) (*benchResult, error) {
 			return nil, err
 		}
 		lastPrefix = fmt.Sprintf("bench%d", round)
-		p, err := benchPipeline(ctx, base, rdb, lastPrefix, fmt.Sprintf("bench-%d", round), ends)
+		// Ingest: no refit tick within the events' span.
+		ingest := base
+		ingest.Pipeline.RefitEvery = 365 * 24 * time.Hour
+		ingest.Pipeline.PublishEvery = ingest.Pipeline.RefitEvery
+		p, err := benchPipeline(ctx, ingest, rdb, lastPrefix, fmt.Sprintf("bench-%d", round), ends)
 		if err != nil {
 			return nil, err
 		}
-		res.Rounds = append(res.Rounds, benchRun{BareSeconds: b.Seconds(), PipelineSeconds: p.Seconds(), Ratio: b.Seconds() / p.Seconds()})
+		t, err := benchPipeline(ctx, base, rdb, lastPrefix+"t", fmt.Sprintf("bench-%d-ticked", round), ends)
+		if err != nil {
+			return nil, err
+		}
+		res.Rounds = append(res.Rounds, benchRun{
+			BareSeconds: b.Seconds(), PipelineSeconds: p.took.Seconds(), Ratio: b.Seconds() / p.took.Seconds(), RedisCPUSeconds: p.redisCPU,
+			TickedSeconds: t.took.Seconds(), TickedRatio: b.Seconds() / t.took.Seconds(), TickedRedisCPUSeconds: t.redisCPU,
+		})
 		bare = append(bare, float64(o.Events)/b.Seconds())
-		pipe = append(pipe, float64(o.Events)/p.Seconds())
-		ratios = append(ratios, b.Seconds()/p.Seconds())
+		pipe = append(pipe, float64(o.Events)/p.took.Seconds())
+		ratios = append(ratios, b.Seconds()/p.took.Seconds())
+		ticked = append(ticked, float64(o.Events)/t.took.Seconds())
+		tickedRatios = append(tickedRatios, b.Seconds()/t.took.Seconds())
+		res.OrphansParked, res.TickedOrphansParked = p.orphansParked, t.orphansParked
 	}
 	res.BareEPS, res.PipelineEPS, res.Ratio = median(bare), median(pipe), median(ratios)
+	res.TickedEPS, res.TickedRatio = median(ticked), median(tickedRatios)
 
 	st, err := state.New(rdb, state.Options{Prefix: lastPrefix})
 	if err != nil {
@@ -251,6 +295,16 @@ func runBench(ctx context.Context, o benchOptions) (*benchResult, error) {
 	if res.Counted != res.Generated {
 		return nil, fmt.Errorf("bench: pipeline counted %d clicks and %d conversions, generated %d and %d",
 			res.Counted.Clicks, res.Counted.Conversions, res.Generated.Clicks, res.Generated.Conversions)
+	}
+	tst, err := state.New(rdb, state.Options{Prefix: lastPrefix + "t"})
+	if err != nil {
+		return nil, err
+	}
+	if tc, err := benchTotals(ctx, tst, ev); err != nil {
+		return nil, err
+	} else if tc != res.Generated {
+		return nil, fmt.Errorf("bench: ticked pipeline counted %d clicks and %d conversions, generated %d and %d",
+			tc.Clicks, tc.Conversions, res.Generated.Clicks, res.Generated.Conversions)
 	}
 	if res.RedisBytesPerArm, err = meanMemoryUsage(ctx, rdb, lastPrefix+":{x:*}:a:*", 0); err != nil {
 		return nil, err
@@ -379,24 +433,34 @@ func benchBare(ctx context.Context, brokers []string, ends map[state.TopicPartit
 	return time.Since(start), nil
 }
 
-// benchPipeline runs the service in a fresh group and key prefix until
-// its resume offsets reach every end, and returns the wall time from the
-// moment it was ready (in the group, Redis answering) to then; the group
-// join is left out, as the bare reader has none.
-func benchPipeline(ctx context.Context, base consumer.Config, rdb *redis.Client, prefix, group string, ends map[state.TopicPartition]int64) (time.Duration, error) {
+// pipelineRun is one timed run of the service.
+type pipelineRun struct {
+	took          time.Duration
+	redisCPU      float64 // seconds
+	orphansParked float64
+}
+
+// benchPipeline runs the service configured by base in a fresh group and
+// key prefix until its resume offsets reach every end, and returns the
+// wall time from the moment it was ready (in the group, Redis answering)
+// to then; the group join is left out, as the bare reader has none. The
+// model fit is replaced by benchRefit.
+func benchPipeline(ctx context.Context, base consumer.Config, rdb *redis.Client, prefix, group string, ends map[state.TopicPartition]int64) (pipelineRun, error) {
+	var run pipelineRun
 	st, err := state.New(rdb, state.Options{Prefix: prefix})
 	if err != nil {
-		return 0, fmt.Errorf("bench: %w", err)
+		return run, fmt.Errorf("bench: %w", err)
 	}
 	cfg := base
 	cfg.Kafka.Group = group
 	cfg.Redis.Prefix = prefix
-	// No refit within the events' span: this measures the ingest path.
-	cfg.Pipeline.RefitEvery = 365 * 24 * time.Hour
-	cfg.Pipeline.PublishEvery = cfg.Pipeline.RefitEvery
-	svc, err := consumer.New(cfg, consumer.Deps{Store: st, Logger: zap.NewNop()})
+	// The logs end: let their partitions count as idle soon, so that the
+	// watermark reaches the last events without a minute's wait.
+	cfg.Pipeline.IdleTimeout = 200 * time.Millisecond
+	metrics := consumer.NewMetrics(prometheus.NewRegistry())
+	svc, err := consumer.New(cfg, consumer.Deps{Store: st, Logger: zap.NewNop(), Metrics: metrics, Refit: benchRefit})
 	if err != nil {
-		return 0, fmt.Errorf("bench: %w", err)
+		return run, fmt.Errorf("bench: %w", err)
 	}
 	runCtx, cancel := context.WithCancel(ctx)
 	done := make(chan error, 1)
@@ -407,13 +471,18 @@ func benchPipeline(ctx context.Context, base consumer.Config, rdb *redis.Client,
 	}
 	deadline := time.Now().Add(10 * time.Minute)
 	var ready time.Time
+	var cpu0 float64
 	for {
 		select {
 		case err := <-done:
-			return 0, fmt.Errorf("bench: pipeline stopped early: %v", err)
+			return run, fmt.Errorf("bench: pipeline stopped early: %v", err)
 		default:
 		}
 		if ready.IsZero() && svc.Ready(ctx) == nil {
+			if cpu0, err = redisCPU(ctx, rdb); err != nil {
+				_ = stop()
+				return run, err
+			}
 			ready = time.Now()
 		}
 		if !ready.IsZero() {
@@ -426,19 +495,61 @@ func benchPipeline(ctx context.Context, base consumer.Config, rdb *redis.Client,
 				}
 			}
 			if caught {
-				took := time.Since(ready)
-				if err := stop(); err != nil {
-					return 0, fmt.Errorf("bench: pipeline: %w", err)
+				run.took = time.Since(ready)
+				cpu1, err := redisCPU(ctx, rdb)
+				if err != nil {
+					_ = stop()
+					return run, err
 				}
-				return took, nil
+				run.redisCPU = cpu1 - cpu0
+				if err := stop(); err != nil {
+					return run, fmt.Errorf("bench: pipeline: %w", err)
+				}
+				run.orphansParked = counterValue(metrics.OrphansParked)
+				return run, nil
 			}
 		}
 		if time.Now().After(deadline) || ctx.Err() != nil {
 			_ = stop()
-			return 0, errors.New("bench: pipeline did not consume every event within 10 minutes")
+			return run, errors.New("bench: pipeline did not consume every event within 10 minutes")
 		}
 		time.Sleep(5 * time.Millisecond)
 	}
+}
+
+// redisCPU returns the CPU seconds (user + system) the redis-server used
+// so far, from INFO cpu.
+func redisCPU(ctx context.Context, rdb *redis.Client) (float64, error) {
+	info, err := rdb.Info(ctx, "cpu").Result()
+	if err != nil {
+		return 0, fmt.Errorf("bench: INFO cpu: %w", err)
+	}
+	var sum float64
+	var found int
+	for line := range strings.Lines(info) {
+		k, v, ok := strings.Cut(strings.TrimSpace(line), ":")
+		if ok && (k == "used_cpu_user" || k == "used_cpu_sys") {
+			f, err := strconv.ParseFloat(v, 64)
+			if err != nil {
+				return 0, fmt.Errorf("bench: INFO cpu %s: %w", k, err)
+			}
+			sum += f
+			found++
+		}
+	}
+	if found != 2 {
+		return 0, errors.New("bench: INFO cpu lacks used_cpu_user or used_cpu_sys")
+	}
+	return sum, nil
+}
+
+// counterValue reads a counter's value.
+func counterValue(c prometheus.Counter) float64 {
+	var m dto.Metric
+	if err := c.Write(&m); err != nil {
+		return math.NaN()
+	}
+	return m.GetCounter().GetValue()
 }
 
 // meanMemoryUsage averages MEMORY USAGE over the keys matching pattern
@@ -487,11 +598,14 @@ func writeBench(w io.Writer, format string, r *benchResult) error {
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
 	fmt.Fprintf(tw, "events\t%d\n", r.Events)
 	for i, run := range r.Rounds {
-		fmt.Fprintf(tw, "round %d\tbare %.3fs\tpipeline %.3fs\tratio %.3f\n", i+1, run.BareSeconds, run.PipelineSeconds, run.Ratio)
+		fmt.Fprintf(tw, "round %d\tbare %.3fs\tpipeline %.3fs\tratio %.3f\tredis cpu %.2fs\tticked %.3fs\tratio %.3f\tredis cpu %.2fs\n", i+1, run.BareSeconds, run.PipelineSeconds, run.Ratio, run.RedisCPUSeconds, run.TickedSeconds, run.TickedRatio, run.TickedRedisCPUSeconds)
 	}
 	fmt.Fprintf(tw, "bare reader\t%.0f events/s\n", r.BareEPS)
 	fmt.Fprintf(tw, "pipeline\t%.0f events/s\n", r.PipelineEPS)
 	fmt.Fprintf(tw, "pipeline/bare\t%.3f (median of rounds)\n", r.Ratio)
+	fmt.Fprintf(tw, "ticked pipeline\t%.0f events/s\n", r.TickedEPS)
+	fmt.Fprintf(tw, "ticked pipeline/bare\t%.3f (median of rounds; default refit period, fit left out)\n", r.TickedRatio)
+	fmt.Fprintf(tw, "orphans parked\t%.0f (ticked: %.0f) of %d conversions\n", r.OrphansParked, r.TickedOrphansParked, r.Generated.Conversions)
 	fmt.Fprintf(tw, "redis bytes per arm\t%.0f (%s; %.0f hash fields, not compacted)\n", r.RedisBytesPerArm, r.BytesMethod, r.RedisFieldsPerArm)
 	fmt.Fprintf(tw, "redis bytes per arm, compacted\t%.0f (%.0f hash fields, as after a refit)\n", r.RedisBytesPerArmCompacted, r.RedisFieldsPerArmCompacted)
 	fmt.Fprintf(tw, "redis bytes per pending click\t%.0f (%s)\n", r.RedisBytesPerPendingClick, r.BytesMethod)
@@ -559,4 +673,15 @@ func (rs *benchRedis) stop() {
 	_ = rs.cmd.Process.Kill()
 	<-rs.done
 	os.RemoveAll(rs.dir)
+}
+
+// benchRefit stands in for the estimator in bench runs: the tick
+// machinery, loads, compaction and publication run as in production, but
+// the fit is left out (its cost is measured by BenchmarkRefitTick).
+func benchRefit(in estimator.ExperimentInput) (estimator.ExperimentReport, error) {
+	rep := estimator.ExperimentReport{Experiment: in.Experiment, AsOf: time.UnixMilli(in.AsOf).UTC().Format(time.RFC3339Nano), Status: estimator.StatusCollecting, Policy: "uniform", Weights: map[string]float64{}}
+	for _, a := range in.Arms {
+		rep.Weights[a.Arm] = 1 / float64(len(in.Arms))
+	}
+	return rep, nil
 }

@@ -8,6 +8,8 @@ import (
 	"os/exec"
 	"strings"
 	"testing"
+
+	"github.com/segmentio/kafka-go"
 )
 
 // TestBench runs `ripen bench` on a small workload and checks the JSON
@@ -54,12 +56,22 @@ func TestBench(t *testing.T) {
 	if len(r.Rounds) != defaultBenchRounds {
 		t.Fatalf("%d rounds, want %d", len(r.Rounds), defaultBenchRounds)
 	}
-	var ratios []float64
+	var ratios, ticked []float64
 	for _, run := range r.Rounds {
 		ratios = append(ratios, run.BareSeconds/run.PipelineSeconds)
+		ticked = append(ticked, run.BareSeconds/run.TickedSeconds)
+		if !(run.RedisCPUSeconds > 0) || !(run.TickedRedisCPUSeconds > 0) {
+			t.Errorf("round %+v: want positive Redis CPU seconds for both runs", run)
+		}
 	}
 	if got := median(ratios); got != r.Ratio {
 		t.Errorf("ratio %v, median of the rounds' ratios %v", r.Ratio, got)
+	}
+	if got := median(ticked); got != r.TickedRatio || !(r.TickedEPS > 0) {
+		t.Errorf("ticked ratio %v (%v events/s), median of the rounds' ticked ratios %v", r.TickedRatio, r.TickedEPS, got)
+	}
+	if r.OrphansParked > float64(r.Generated.Conversions) || r.TickedOrphansParked > float64(r.Generated.Conversions) {
+		t.Errorf("orphans parked %v / %v, more than the %d conversions", r.OrphansParked, r.TickedOrphansParked, r.Generated.Conversions)
 	}
 	if r.Generated.Clicks+r.Generated.Conversions != n || r.Generated.Conversions == 0 {
 		t.Errorf("generated %+v, want %d events with some conversions", r.Generated, n)
@@ -76,7 +88,7 @@ func TestBench(t *testing.T) {
 	if err := cmd.ExecuteContext(context.Background()); err != nil {
 		t.Fatalf("bench table: %v", err)
 	}
-	for _, want := range []string{"bare reader", "pipeline", "pipeline/bare", "redis bytes per arm", "redis bytes per pending click"} {
+	for _, want := range []string{"bare reader", "pipeline", "pipeline/bare", "ticked pipeline/bare", "orphans parked", "redis bytes per arm", "redis bytes per pending click"} {
 		if !strings.Contains(out.String(), want) {
 			t.Errorf("table lacks %q:\n%s", want, out.String())
 		}
@@ -97,5 +109,32 @@ func TestBenchFlagErrors(t *testing.T) {
 				t.Errorf("bench %v: error %v, want exit code 2", args, err)
 			}
 		})
+	}
+}
+
+// TestBenchEventsInTimeOrder checks that each generated topic is in event
+// time order, as a producer writing events when they happen leaves it.
+func TestBenchEventsInTimeOrder(t *testing.T) {
+	ev := genBenchEvents(20_000)
+	for _, topic := range []struct {
+		name string
+		msgs []kafka.Message
+	}{{"clicks", ev.clicks}, {"conversions", ev.convs}} {
+		var last int64
+		for i, m := range topic.msgs {
+			var v struct {
+				TS int64 `json:"ts"`
+			}
+			if err := json.Unmarshal(m.Value, &v); err != nil {
+				t.Fatalf("%s %d: %v", topic.name, i, err)
+			}
+			if v.TS < last {
+				t.Fatalf("%s %d at %d, before its predecessor at %d", topic.name, i, v.TS, last)
+			}
+			last = v.TS
+		}
+	}
+	if len(ev.convs) == 0 {
+		t.Fatal("no conversions generated")
 	}
 }

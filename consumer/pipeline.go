@@ -334,12 +334,39 @@ func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 		records = append(records, state.ClickRecord{ClickID: ce.c.ClickID, Experiment: ce.c.Experiment, Arm: ce.c.Arm, TS: ce.c.TS, Window: e.layout.Window, Origin: ce.org})
 		indexed = append(indexed, ce)
 	}
+	// Conversions: join to indexed clicks or park until the click comes.
+	lookups := make([]state.ConversionLookup, len(convs))
+	for i, cv := range convs {
+		lookups[i] = state.ConversionLookup{
+			ClickID: cv.v.ClickID, TS: cv.v.TS, Origin: origin(cv.m.tp, cv.m.offset), Raw: cv.m.value,
+			Topic: cv.m.tp.Topic, Partition: cv.m.tp.Partition,
+			Deadline: cv.v.TS + cfg.Pipeline.OrphanTTL.Milliseconds(),
+		}
+	}
+	// The clicks are indexed and the conversions looked up at once, so
+	// that Redis works on one while the other is encoded or decoded. A
+	// conversion whose click of the same batch is not indexed yet when
+	// it is looked up parks, and that click claims it below: the state
+	// scripts join the two exactly once in either order (see
+	// state.Store.IndexClicks).
 	var put []state.ClickResult
-	if err := s.retry(ctx, "put clicks", func(ctx context.Context) error {
+	var found []state.LookupResult
+	var putErr, lookErr error
+	var wg sync.WaitGroup
+	wg.Go(func() {
+		putErr = s.retry(ctx, "put clicks", func(ctx context.Context) error {
+			var err error
+			put, err = s.store.IndexClicks(ctx, records)
+			return err
+		})
+	})
+	lookErr = s.retry(ctx, "lookup conversions", func(ctx context.Context) error {
 		var err error
-		put, err = s.store.IndexClicks(ctx, records)
+		found, err = s.store.LookupConversions(ctx, lookups)
 		return err
-	}); err != nil {
+	})
+	wg.Wait()
+	if err := errors.Join(putErr, lookErr); err != nil {
 		return res, err
 	}
 	for i, r := range put {
@@ -369,23 +396,7 @@ func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 		db.conversion(e, ce.c.Arm, o.ClickID, o.Origin, ce.m.tp, ce.m.offset, ce.c.TS, v.TS, false)
 	}
 
-	// Conversions: join to indexed clicks or park until the click comes.
-	lookups := make([]state.ConversionLookup, len(convs))
-	for i, cv := range convs {
-		lookups[i] = state.ConversionLookup{
-			ClickID: cv.v.ClickID, TS: cv.v.TS, Origin: origin(cv.m.tp, cv.m.offset), Raw: cv.m.value,
-			Topic: cv.m.tp.Topic, Partition: cv.m.tp.Partition,
-			Deadline: cv.v.TS + cfg.Pipeline.OrphanTTL.Milliseconds(),
-		}
-	}
-	var found []state.LookupResult
-	if err := s.retry(ctx, "lookup conversions", func(ctx context.Context) error {
-		var err error
-		found, err = s.store.LookupConversions(ctx, lookups)
-		return err
-	}); err != nil {
-		return res, err
-	}
+	// Conversions: joined to their clicks, or parked until the click comes.
 	for i, r := range found {
 		cv, org := convs[i], lookups[i].Origin
 		switch r.Status {

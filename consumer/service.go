@@ -164,8 +164,8 @@ func New(cfg Config, deps Deps) (*Service, error) {
 		published: map[string]int64{},
 		watermark: noTime,
 	}
-	s.deadLetters = &deadLetters{w: newWriter(cfg.Kafka, cfg.Kafka.DeadLetterTopic, transport), metrics: deps.Metrics}
-	s.alloc = newWriter(cfg.Kafka, cfg.Kafka.AllocationTopic, transport)
+	s.deadLetters = &deadLetters{w: newWriter(cfg.Kafka, cfg.Kafka.DeadLetterTopic, transport, deadLetterBatch), metrics: deps.Metrics}
+	s.alloc = newWriter(cfg.Kafka, cfg.Kafka.AllocationTopic, transport, 1)
 	if deps.NoDeadLetterTopic {
 		s.deadLetters.w = discardWriter{}
 	}
@@ -175,16 +175,24 @@ func New(cfg Config, deps Deps) (*Service, error) {
 	return s, nil
 }
 
+// deadLetterBatch is the batch size of the dead-letter writer: a flush
+// writes its dead letters in one call.
+const deadLetterBatch = 1000
+
 // newWriter returns a synchronous writer to topic that waits for every
-// in-sync replica, with a short batch timeout (each call is one batch).
-func newWriter(k KafkaConfig, topic string, t *kafka.Transport) *kafka.Writer {
+// in-sync replica, with batches of batch messages and a short batch
+// timeout. A synchronous call whose messages do not fill a batch waits
+// for the timeout (kafka-go sends a partial batch only then), so the
+// allocation writer, which writes one message a call, has batches of one
+// and sends each at once.
+func newWriter(k KafkaConfig, topic string, t *kafka.Transport, batch int) *kafka.Writer {
 	return &kafka.Writer{
 		Addr:         kafka.TCP(k.Brokers...),
 		Topic:        topic,
 		Balancer:     &kafka.Hash{},
 		RequiredAcks: kafka.RequireAll,
 		BatchTimeout: 10 * time.Millisecond,
-		BatchSize:    1000,
+		BatchSize:    batch,
 		MaxAttempts:  3,
 		Transport:    t,
 	}

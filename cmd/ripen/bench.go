@@ -125,7 +125,13 @@ full run pipeline (decode, join, aggregate, Redis flush with offsets) consuming
 the same topics into a fresh key prefix in its own consumer group. It prints
 both rates, their ratio (median over the rounds), and the Redis memory
 (MEMORY USAGE) of an arm hash and of a pending click's index entry.
-Refits are left out: the refit period is set beyond the events' time span.`,
+In that ingest run the refit period is set beyond the events' time span.
+Each round also times a ticked run: the service with its default refit
+period, so that hold-back, the group barrier, per-tick loads, compaction
+and publication run as in a replay, with the model fit replaced by a
+uniform allocation (BenchmarkRefitTick measures the fit). Both runs report
+the conversions parked to wait for their click and the redis-server CPU
+seconds they used.`,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
 			if o.Events < 1 {

@@ -343,15 +343,45 @@ func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 			Deadline: cv.v.TS + cfg.Pipeline.OrphanTTL.Milliseconds(),
 		}
 	}
-	// The clicks are indexed and the conversions looked up at once, so
-	// that Redis works on one while the other is encoded or decoded. A
-	// conversion whose click of the same batch is not indexed yet when
-	// it is looked up parks, and that click claims it below: the state
-	// scripts join the two exactly once in either order (see
-	// state.Store.IndexClicks).
+	// The clicks are indexed while the conversions whose click is not in
+	// this batch are looked up, so that Redis works on one while the
+	// other is encoded or decoded; the conversions of this batch's clicks
+	// are looked up after the clicks are indexed, so that they join
+	// directly rather than park (and take room in the orphan buffer).
+	inBatch := make(map[string]bool, len(records))
+	for _, r := range records {
+		inBatch[r.ClickID] = true
+	}
+	var early, late []int // indices into lookups
+	for i, l := range lookups {
+		if inBatch[l.ClickID] {
+			late = append(late, i)
+		} else {
+			early = append(early, i)
+		}
+	}
+	found := make([]state.LookupResult, len(lookups))
+	lookup := func(idx []int) error {
+		if len(idx) == 0 {
+			return nil
+		}
+		part := make([]state.ConversionLookup, len(idx))
+		for j, i := range idx {
+			part[j] = lookups[i]
+		}
+		return s.retry(ctx, "lookup conversions", func(ctx context.Context) error {
+			got, err := s.store.LookupConversions(ctx, part)
+			if err != nil {
+				return err
+			}
+			for j, i := range idx {
+				found[i] = got[j]
+			}
+			return nil
+		})
+	}
 	var put []state.ClickResult
-	var found []state.LookupResult
-	var putErr, lookErr error
+	var putErr error
 	var wg sync.WaitGroup
 	wg.Go(func() {
 		putErr = s.retry(ctx, "put clicks", func(ctx context.Context) error {
@@ -360,13 +390,12 @@ func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 			return err
 		})
 	})
-	lookErr = s.retry(ctx, "lookup conversions", func(ctx context.Context) error {
-		var err error
-		found, err = s.store.LookupConversions(ctx, lookups)
-		return err
-	})
+	lookErr := lookup(early)
 	wg.Wait()
 	if err := errors.Join(putErr, lookErr); err != nil {
+		return res, err
+	}
+	if err := lookup(late); err != nil {
 		return res, err
 	}
 	for i, r := range put {

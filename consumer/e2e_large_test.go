@@ -447,22 +447,5 @@ func (e *testEnv) startDeps(t *testing.T, cfg Config, deps Deps) (*Service, func
 	if err != nil {
 		t.Fatal(err)
 	}
-	ctx, cancel := context.WithCancel(context.Background())
-	done := make(chan error, 1)
-	go func() { done <- svc.Run(ctx) }()
-	var once sync.Once
-	var runErr error
-	stop := func() error {
-		once.Do(func() {
-			cancel()
-			select {
-			case runErr = <-done:
-			case <-time.After(cfg.ShutdownTimeout + 10*time.Second):
-				runErr = fmt.Errorf("service did not stop within %v", cfg.ShutdownTimeout+10*time.Second)
-			}
-		})
-		return runErr
-	}
-	t.Cleanup(func() { _ = stop() })
-	return svc, stop
+	return svc, runService(t, svc, cfg)
 }

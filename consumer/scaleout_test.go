@@ -3,12 +3,10 @@ package consumer
 import (
 	"context"
 	"encoding/json"
-	"fmt"
 	"maps"
 	"reflect"
 	"slices"
 	"strings"
-	"sync"
 	"testing"
 	"time"
 
@@ -87,23 +85,7 @@ func startInstance(t *testing.T, env *testEnv, cfg Config, name string, hooks te
 		t.Fatal(err)
 	}
 	svc.hooks = hooks
-	ctx, cancel := context.WithCancel(context.Background())
-	done := make(chan error, 1)
-	go func() { done <- svc.Run(ctx) }()
-	var once sync.Once
-	var runErr error
-	stop := func() error {
-		once.Do(func() {
-			cancel()
-			select {
-			case runErr = <-done:
-			case <-time.After(cfg.ShutdownTimeout + 10*time.Second):
-				runErr = fmt.Errorf("instance %s did not stop within %v", name, cfg.ShutdownTimeout+10*time.Second)
-			}
-		})
-		return runErr
-	}
-	t.Cleanup(func() { _ = stop() })
+	stop := runService(t, svc, cfg)
 	return &scaleOutInstance{name: name, svc: svc, metrics: m, stop: stop}
 }
 

@@ -291,30 +291,39 @@ func (e *testEnv) start(t *testing.T, cfg Config, log *zap.Logger, hooks testHoo
 		t.Fatal(err)
 	}
 	svc.hooks = hooks
+	return svc, runService(t, svc, cfg)
+}
+
+// runService runs svc (built with cfg) in the background until the
+// returned function, also called when the test ends, cancels it; that
+// function returns Run's error, or an error if Run does not return within
+// the shutdown timeout plus 10 s. An error ending Run is logged.
+func runService(t *testing.T, svc *Service, cfg Config) func() error {
 	ctx, cancel := context.WithCancel(context.Background())
 	done := make(chan error, 1)
 	go func() {
 		err := svc.Run(ctx)
 		if err != nil {
-			log.Error("run ended", zap.Error(err))
+			svc.log.Error("run ended", zap.Error(err))
 		}
 		done <- err
 	}()
 	var once sync.Once
 	var runErr error
+	wait := cfg.ShutdownTimeout + 10*time.Second
 	stop := func() error {
 		once.Do(func() {
 			cancel()
 			select {
 			case runErr = <-done:
-			case <-time.After(cfg.ShutdownTimeout + 10*time.Second):
-				runErr = errors.New("service did not stop in time")
+			case <-time.After(wait):
+				runErr = fmt.Errorf("service did not stop within %v", wait)
 			}
 		})
 		return runErr
 	}
 	t.Cleanup(func() { _ = stop() })
-	return svc, stop
+	return stop
 }
 
 // checkAgainstOffline compares every stored arm state with the state

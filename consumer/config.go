@@ -798,7 +798,7 @@ func DecodeControl(key, value []byte) (string, ControlMessage, error) {
 // check reports a malformed field that applyTo would otherwise ignore.
 func (m ControlMessage) check() error {
 	if m.Window != "" {
-		if _, err := ParseDuration(m.Window); err != nil {
+		if _, err := estimator.ParseDuration(m.Window); err != nil {
 			return fmt.Errorf("window: %w", err)
 		}
 	}
@@ -815,7 +815,7 @@ func (m ControlMessage) applyTo(e ExperimentConfig) ExperimentConfig {
 		Paused: m.Paused,
 	}
 	if m.Window != "" {
-		if d, err := ParseDuration(m.Window); err == nil {
+		if d, err := estimator.ParseDuration(m.Window); err == nil {
 			o.Window = d
 		}
 	}

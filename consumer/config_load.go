@@ -14,6 +14,8 @@ import (
 
 	"github.com/spf13/pflag"
 	"gopkg.in/yaml.v3"
+
+	"ripen/estimator"
 )
 
 // EnvConfig names the environment variable holding the config file path,
@@ -144,7 +146,7 @@ func (w *nodeWalker) walk(n *yaml.Node, t reflect.Type, path string) {
 		case "!!int", "!!float":
 			w.fail(n, path, "duration %s has no unit; write e.g. %sm, %sh or %sd", n.Value, n.Value, n.Value, n.Value)
 		case "!!str":
-			d, err := ParseDuration(n.Value)
+			d, err := estimator.ParseDuration(n.Value)
 			if err != nil {
 				w.fail(n, path, "%v", err)
 				return
@@ -206,30 +208,6 @@ func sortedKeys[V any](m map[string]V) []string {
 	}
 	slices.Sort(ks)
 	return ks
-}
-
-// ParseDuration parses a duration in Go syntax ("500ms", "1h30m") or as a
-// whole or fractional number of days or weeks ("7d", "1.5d", "2w").
-func ParseDuration(s string) (time.Duration, error) {
-	t := strings.TrimSpace(s)
-	for _, u := range []struct {
-		suffix string
-		unit   time.Duration
-	}{{"d", 24 * time.Hour}, {"w", 7 * 24 * time.Hour}} {
-		if num, ok := strings.CutSuffix(t, u.suffix); ok {
-			f, err := strconv.ParseFloat(num, 64)
-			// 15000 weeks is below the ~292 years a Duration holds.
-			if err != nil || f < 0 || f*float64(u.unit) > float64(15000*7*24*time.Hour) || num != strings.TrimSpace(num) || strings.ContainsAny(num, "eEnNxX_") {
-				return 0, fmt.Errorf("duration %q: want a non-negative number of %s such as 7%s, or Go syntax such as 90m", s, u.suffix, u.suffix)
-			}
-			return time.Duration(f * float64(u.unit)), nil
-		}
-	}
-	d, err := time.ParseDuration(t)
-	if err != nil {
-		return 0, fmt.Errorf("duration %q: want Go syntax such as 90m or 1h30m, or days such as 7d", s)
-	}
-	return d, nil
 }
 
 // envField is one configuration setting reachable from the environment.
@@ -311,7 +289,7 @@ func setText(v reflect.Value, s string) error {
 	}
 	switch {
 	case v.Type() == durationType:
-		d, err := ParseDuration(s)
+		d, err := estimator.ParseDuration(s)
 		if err != nil {
 			return err
 		}

@@ -105,7 +105,7 @@ func runFit(cmd *cobra.Command, f fitFlags) error {
 	if err != nil {
 		return fmt.Errorf("--as-of: %w", err)
 	}
-	window, err := consumer.ParseDuration(f.window)
+	window, err := estimator.ParseDuration(f.window)
 	if err != nil {
 		return fmt.Errorf("--window: %w", err)
 	}

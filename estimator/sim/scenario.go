@@ -16,7 +16,6 @@ import (
 	"fmt"
 	"io"
 	"math"
-	"strconv"
 	"strings"
 	"time"
 
@@ -71,7 +70,7 @@ func (d *Duration) UnmarshalYAML(n *yaml.Node) error {
 	if n.Kind != yaml.ScalarNode {
 		return fmt.Errorf("line %d: want a duration such as 6h or 7d", n.Line)
 	}
-	v, err := ParseDuration(n.Value)
+	v, err := estimator.ParseDuration(n.Value)
 	if err != nil {
 		return fmt.Errorf("line %d: %w", n.Line, err)
 	}
@@ -81,29 +80,6 @@ func (d *Duration) UnmarshalYAML(n *yaml.Node) error {
 
 // MarshalYAML implements yaml.Marshaler.
 func (d Duration) MarshalYAML() (any, error) { return d.String(), nil }
-
-// ParseDuration parses a Go duration, or a number of days ("7d") or weeks
-// ("2w").
-func ParseDuration(s string) (time.Duration, error) {
-	t := strings.TrimSpace(s)
-	for _, u := range []struct {
-		suffix string
-		unit   time.Duration
-	}{{"d", 24 * time.Hour}, {"w", 7 * 24 * time.Hour}} {
-		if num, ok := strings.CutSuffix(t, u.suffix); ok {
-			f, err := strconv.ParseFloat(num, 64)
-			if err != nil || !(f >= 0) || f > 1e5 {
-				return 0, fmt.Errorf("duration %q: want a number of %s such as 7%s", s, u.suffix, u.suffix)
-			}
-			return time.Duration(f * float64(u.unit)), nil
-		}
-	}
-	v, err := time.ParseDuration(t)
-	if err != nil {
-		return 0, fmt.Errorf("duration %q: want e.g. 90m, 6h or 7d", s)
-	}
-	return v, nil
-}
 
 // Scenario is a simulated experiment: traffic, arms with their true
 // eventual conversion rates and delay distributions, change points, and how

@@ -123,13 +123,9 @@ func buildExperiment(id string, names []string, parts []any) (*Experiment, error
 		return nil, err
 	}
 	for i, name := range names {
-		h, err := flatHash(parts[2+i])
+		c, err := canonicalArm(layout, wm, name, parts[2+i])
 		if err != nil {
-			return nil, fmt.Errorf("arm %q: %w", name, err)
-		}
-		c, err := canonicalize(layout, wm, h)
-		if err != nil {
-			return nil, fmt.Errorf("arm %q: %w", name, err)
+			return nil, err
 		}
 		st, held, err := c.state(layout, wm)
 		if err != nil {
@@ -144,6 +140,20 @@ func buildExperiment(id string, names []string, parts []any) (*Experiment, error
 		}
 	}
 	return e, nil
+}
+
+// canonicalArm parses the load script's reply for arm name (a flat hash)
+// and canonicalizes its counts at wm.
+func canonicalArm(layout estimator.Layout, wm int64, name string, part any) (armCounts, error) {
+	h, err := flatHash(part)
+	if err != nil {
+		return armCounts{}, fmt.Errorf("arm %q: %w", name, err)
+	}
+	c, err := canonicalize(layout, wm, h)
+	if err != nil {
+		return armCounts{}, fmt.Errorf("arm %q: %w", name, err)
+	}
+	return c, nil
 }
 
 // parseMeta reads the layout and watermark of a meta hash.

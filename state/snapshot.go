@@ -281,13 +281,9 @@ func snapshotExperiment(id string, names []string, parts []any) (*ExperimentSnap
 	}
 	e.Offsets = sortedOffsets(offs)
 	for i, name := range names {
-		h, err := flatHash(parts[2+i])
+		c, err := canonicalArm(layout, wm, name, parts[2+i])
 		if err != nil {
-			return nil, fmt.Errorf("arm %q: %w", name, err)
-		}
-		c, err := canonicalize(layout, wm, h)
-		if err != nil {
-			return nil, fmt.Errorf("arm %q: %w", name, err)
+			return nil, err
 		}
 		rec, err := c.record(name, layout, wm)
 		if err != nil {

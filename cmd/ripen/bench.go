@@ -8,7 +8,6 @@ import (
 	"fmt"
 	"io"
 	"maps"
-	"math"
 	"math/rand/v2"
 	"net"
 	"os"
@@ -21,7 +20,6 @@ import (
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
-	dto "github.com/prometheus/client_model/go"
 	"github.com/redis/go-redis/v9"
 	"github.com/segmentio/kafka-go"
 	"github.com/spf13/cobra"
@@ -547,15 +545,6 @@ func redisCPU(ctx context.Context, rdb *redis.Client) (float64, error) {
 		return 0, errors.New("bench: INFO cpu lacks used_cpu_user or used_cpu_sys")
 	}
 	return sum, nil
-}
-
-// counterValue reads a counter's value.
-func counterValue(c prometheus.Counter) float64 {
-	var m dto.Metric
-	if err := c.Write(&m); err != nil {
-		return math.NaN()
-	}
-	return m.GetCounter().GetValue()
 }
 
 // meanMemoryUsage averages MEMORY USAGE over the keys matching pattern

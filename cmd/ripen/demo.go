@@ -25,7 +25,6 @@ import (
 
 	"github.com/alicebob/miniredis/v2"
 	"github.com/prometheus/client_golang/prometheus"
-	dto "github.com/prometheus/client_model/go"
 	"github.com/redis/go-redis/v9"
 	"github.com/segmentio/kafka-go"
 	"github.com/spf13/cobra"
@@ -352,22 +351,6 @@ func waitConsumed(ctx context.Context, kc *kafka.Client, store *state.Store, top
 		}
 	}
 	return nil
-}
-
-func sampleCount(h prometheus.Histogram) uint64 {
-	var m dto.Metric
-	if err := h.Write(&m); err != nil {
-		return 0
-	}
-	return m.GetHistogram().GetSampleCount()
-}
-
-func gaugeValue(g prometheus.Gauge) float64 {
-	var m dto.Metric
-	if err := g.Write(&m); err != nil {
-		return math.NaN()
-	}
-	return m.GetGauge().GetValue()
 }
 
 func uniformWeights(arms []string) []float64 {

@@ -305,6 +305,7 @@ func (c *compiled) simulate(ctx context.Context, alloc estimator.AllocationOptio
 		weights[i] = 1 / float64(k)
 	}
 	var prev []float64
+	var settle *estimator.SettleState
 	var pending convHeap
 	trueSum := make([]float64, k) // sum of true CVR over each arm's clicks
 	clicks := make([]float64, k)
@@ -359,6 +360,7 @@ func (c *compiled) simulate(ctx context.Context, alloc estimator.AllocationOptio
 			Fit:         estimator.FitOptions{Family: family},
 			Allocation:  alloc,
 			PrevWeights: prev,
+			PrevSettle:  settle,
 			Seed:        splitmix(seed^uint64(step)) | 1,
 		})
 		if err != nil {
@@ -375,6 +377,7 @@ func (c *compiled) simulate(ctx context.Context, alloc estimator.AllocationOptio
 			}
 		}
 		prev = slices.Clone(weights)
+		settle = rep.SettleState
 		out.regret = append(out.regret, regret)
 		out.observed = append(out.observed, obs)
 		out.eventual = append(out.eventual, ev)
@@ -384,8 +387,8 @@ func (c *compiled) simulate(ctx context.Context, alloc estimator.AllocationOptio
 			c.cvrAt(end, q)
 			best := slices.Max(q)
 			for i, a := range c.sc.Arms {
-				if a.Name == rep.Leader {
-					out.settleRight = q[i] == best
+				if a.Name == rep.Settle.Arm {
+					out.settleRight = q[i] >= (1-alloc.SettleTolerance)*best
 				}
 			}
 		}

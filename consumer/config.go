@@ -7,7 +7,6 @@ import (
 	"fmt"
 	"io"
 	"maps"
-	"math"
 	"net"
 	"slices"
 	"strconv"
@@ -197,9 +196,11 @@ type ExperimentConfig struct {
 	// many. Defaults: estimator's (100 and 5).
 	BurnInClicks      *int `yaml:"burn_in_clicks"`
 	BurnInConversions *int `yaml:"burn_in_conversions"`
-	// SettleProbability (the leader's P(best), in (0, 1]) and SettleLoss
-	// (its expected loss relative to its mean, >= 0) configure the settle
-	// rule. Defaults: estimator's (0.95 and 0.01).
+	// SettleProbability and SettleLoss configure the settle rule (see
+	// estimator.Settle): it names an arm worse than the best by more than
+	// SettleLoss (relative, in [0, 1)) with probability at most
+	// 1 - SettleProbability (in (0, 1)), however often it is checked.
+	// Defaults: estimator's (0.95 and 0.01).
 	SettleProbability *float64 `yaml:"settle_probability"`
 	SettleLoss        *float64 `yaml:"settle_loss"`
 	// Paused arms receive no traffic. A nil list inherits; an empty list
@@ -357,8 +358,8 @@ func (e ExperimentConfig) WithDefaults() ExperimentConfig {
 	setDefaultPtr(&e.MaxChange, a.MaxChange)
 	setDefaultPtr(&e.BurnInClicks, int(a.BurnInClicks))
 	setDefaultPtr(&e.BurnInConversions, int(a.BurnInConversions))
-	setDefaultPtr(&e.SettleProbability, a.PBestThreshold)
-	setDefaultPtr(&e.SettleLoss, a.LossThreshold)
+	setDefaultPtr(&e.SettleProbability, a.SettleConfidence)
+	setDefaultPtr(&e.SettleLoss, a.SettleTolerance)
 	return e
 }
 
@@ -605,11 +606,11 @@ func (e ExperimentConfig) problems(maxArms int) []error {
 	if *e.BurnInConversions < 0 {
 		v.add("burn_in_conversions", "%d must not be negative", *e.BurnInConversions)
 	}
-	if sp := *e.SettleProbability; !(sp > 0 && sp <= 1) {
-		v.add("settle_probability", "%v not in (0, 1]", sp)
+	if sp := *e.SettleProbability; !(sp > 0 && sp < 1) {
+		v.add("settle_probability", "%v not in (0, 1)", sp)
 	}
-	if sl := *e.SettleLoss; !(sl >= 0) || math.IsInf(sl, 0) {
-		v.add("settle_loss", "%v must be finite and >= 0", sl)
+	if sl := *e.SettleLoss; !(sl >= 0 && sl < 1) {
+		v.add("settle_loss", "%v not in [0, 1)", sl)
 	}
 	if maxArms > 0 && len(e.Paused) > maxArms {
 		v.add("paused", "%d arms exceed limits.max_arms %d", len(e.Paused), maxArms)
@@ -645,8 +646,8 @@ func (e ExperimentConfig) AllocationOptions() (estimator.AllocationOptions, erro
 	o.MaxChange = *e.MaxChange
 	o.BurnInClicks = float64(*e.BurnInClicks)
 	o.BurnInConversions = float64(*e.BurnInConversions)
-	o.PBestThreshold = *e.SettleProbability
-	o.LossThreshold = *e.SettleLoss
+	o.SettleConfidence = *e.SettleProbability
+	o.SettleTolerance = *e.SettleLoss
 	return o, nil
 }
 

@@ -332,7 +332,7 @@ func TestConfigValidate(t *testing.T) {
 		{"cap zero", func(c *Config) { c.Defaults.Cap = ptr(0.0); c.Defaults.Floor = ptr(0.0) }, "defaults.cap: must be positive"},
 		{"max change above 1", func(c *Config) { c.Defaults.MaxChange = ptr(1.5) }, "defaults.max_change: 1.5 not in [0, 1]"},
 		{"negative burn-in", func(c *Config) { c.Defaults.BurnInClicks = ptr(-1) }, "defaults.burn_in_clicks: -1 must not be negative"},
-		{"settle probability 0", func(c *Config) { c.Defaults.SettleProbability = ptr(0.0) }, "defaults.settle_probability: 0 not in (0, 1]"},
+		{"settle probability 0", func(c *Config) { c.Defaults.SettleProbability = ptr(0.0) }, "defaults.settle_probability: 0 not in (0, 1)"},
 		{"paused twice", func(c *Config) {
 			c.Experiments = map[string]ExperimentConfig{"tea-towels": {Paused: []string{"red", "red"}}}
 		}, `experiments["tea-towels"].paused[1]: arm "red" listed twice`},
@@ -551,7 +551,7 @@ func TestConfigAllocationOptions(t *testing.T) {
 		t.Errorf("estimator rejects the options: %v", err)
 	}
 	if o.Policy.Name() != estimator.PolicyTopTwo || o.Floor != 0.05 || o.Cap != 0.9 || o.MaxChange != 0.2 ||
-		o.BurnInClicks != 50 || o.BurnInConversions != 3 || o.PBestThreshold != 0.99 || o.LossThreshold != 0.005 {
+		o.BurnInClicks != 50 || o.BurnInConversions != 3 || o.SettleConfidence != 0.99 || o.SettleTolerance != 0.005 {
 		t.Errorf("options %+v", o)
 	}
 	if f, err := e.DelayFamily(); err != nil || f != estimator.FamilyWeibull {

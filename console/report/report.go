@@ -1,261 +1,257 @@
-// Package report renders an HTML page of tables and SVG charts (drawn with
-// gonum.org/v1/plot) from plain series data. It knows nothing about where
-// the data come from: `ripen simulate --report` feeds it simulated runs, and
-// a live experiment's history can feed it the same charts.
+// Package report describes pages of tables and charts as plain data and
+// renders them one way for every surface: the live console of `ripen run`
+// and the HTML files `ripen report`, `ripen demo` and `ripen simulate`
+// write. A Page marshals to JSON; the page script shipped in this package
+// (assets/ripen.js, with uPlot, assets/uplot) draws it in the browser,
+// whether the JSON came inline in a written file or from the console's API.
+//
+// It knows nothing about where the data come from, and it never builds
+// HTML from the data: every name and number reaches the page as JSON text
+// that the script places with textContent, so names from event producers
+// cannot become markup.
 package report
 
 import (
 	"bytes"
+	"encoding/json"
 	"errors"
-	"fmt"
-	"html/template"
-	"image/color"
-	"io"
 	"math"
-	"os"
-	"path/filepath"
+	"slices"
 	"sort"
-
-	"gonum.org/v1/plot"
-	"gonum.org/v1/plot/plotter"
-	"gonum.org/v1/plot/plotutil"
-	"gonum.org/v1/plot/vg"
-	"gonum.org/v1/plot/vg/draw"
-	"gonum.org/v1/plot/vg/vgsvg"
+	"strconv"
 )
 
-// Chart size in the page. Default: 16cm by 9cm.
+// Axis units the page script understands.
 const (
-	DefaultWidth  = 16 * vg.Centimeter
-	DefaultHeight = 9 * vg.Centimeter
+	// UnitHours: values are hours, ticked at round hours or days.
+	UnitHours = "hours"
+	// UnitPercent: values are shares in [0, 1], printed as percentages.
+	UnitPercent = "percent"
+	// UnitNumber: plain numbers.
+	UnitNumber = "number"
 )
 
-// Series is one line of a chart. Points whose X or Y is NaN or infinite
-// are left out.
-type Series struct {
-	// Name is the legend entry.
-	Name string
-	// X and Y are the points, of equal length.
-	X, Y []float64
-	// Low and High, when both set (same length as X), draw a shaded band.
-	Low, High []float64
-	// Group selects the colour: series of one group (an arm, a policy)
-	// share it.
-	Group int
-	// Dashed draws a dashed line; Step draws a right-continuous step
-	// function (for empirical CDFs).
-	Dashed, Step bool
+// Line styles of a Series.
+const (
+	StyleSolid  = "solid"
+	StyleDashed = "dashed"
+	StyleDotted = "dotted"
+)
+
+// Values are chart coordinates; NaN and infinities marshal as null (a gap).
+type Values []float64
+
+// MarshalJSON writes the values with null for non-finite ones, with the
+// shortest representation that reads back to the same float64.
+func (v Values) MarshalJSON() ([]byte, error) {
+	if v == nil {
+		return []byte("null"), nil
+	}
+	b := make([]byte, 0, 2+8*len(v))
+	b = append(b, '[')
+	for i, x := range v {
+		if i > 0 {
+			b = append(b, ',')
+		}
+		if isFinite(x) {
+			b = strconv.AppendFloat(b, x, 'g', -1, 64)
+		} else {
+			b = append(b, "null"...)
+		}
+	}
+	return append(b, ']'), nil
 }
 
-// Chart is one chart: a title, axis labels and series.
+// UnmarshalJSON reads values written by MarshalJSON (null as NaN).
+func (v *Values) UnmarshalJSON(b []byte) error {
+	var raw []*float64
+	if err := json.Unmarshal(b, &raw); err != nil {
+		return err
+	}
+	if raw == nil {
+		*v = nil
+		return nil
+	}
+	out := make(Values, len(raw))
+	for i, p := range raw {
+		out[i] = math.NaN()
+		if p != nil {
+			out[i] = *p
+		}
+	}
+	*v = out
+	return nil
+}
+
+// Series is one line of a chart. Points whose X or Y is NaN or infinite
+// are gaps.
+type Series struct {
+	// Name is the legend entry of the series' colour (an arm, a policy);
+	// series of one Group share both.
+	Name string `json:"name"`
+	// Role says what the line shows ("eventual", "observed"); the legend
+	// pairs it with the line style. Empty: the colour alone identifies it.
+	Role string `json:"role,omitempty"`
+	// Group selects the colour from the page's colour-blind-safe palette.
+	Group int `json:"group"`
+	// Style is StyleSolid (default), StyleDashed or StyleDotted.
+	Style string `json:"style,omitempty"`
+	// Step draws a right-continuous step function (weights between
+	// publications, empirical CDFs).
+	Step bool `json:"step,omitempty"`
+	// X and Y are the points, of equal length, X increasing.
+	X Values `json:"x"`
+	Y Values `json:"y"`
+	// Low and High, when both set (same length as X), draw a shaded band;
+	// Band names it in the legend ("95% credible interval").
+	Low  Values `json:"low,omitempty"`
+	High Values `json:"high,omitempty"`
+	Band string `json:"band,omitempty"`
+}
+
+// Axis describes one axis of a chart.
+type Axis struct {
+	Label string `json:"label"`
+	// Unit is UnitHours, UnitPercent or UnitNumber (default).
+	Unit string `json:"unit,omitempty"`
+	// Min and Max fix the range; nil fits the data.
+	Min *float64 `json:"min,omitempty"`
+	Max *float64 `json:"max,omitempty"`
+}
+
+// Chart is one chart: a title, axes and series.
 type Chart struct {
 	// ID names the chart in the page (an HTML id); derived from the
 	// position when empty.
-	ID     string
-	Title  string
-	XLabel string
-	YLabel string
-	Series []Series
+	ID    string `json:"id"`
+	Title string `json:"title"`
+	// Note is a sentence under the title (what the lines mean).
+	Note   string   `json:"note,omitempty"`
+	X      Axis     `json:"x"`
+	Y      Axis     `json:"y"`
+	Series []Series `json:"series"`
 }
 
-// Table is a small table printed above the charts.
+// Table is a small table of text cells.
 type Table struct {
-	Caption string
-	Header  []string
-	Rows    [][]string
+	ID      string     `json:"id,omitempty"`
+	Caption string     `json:"caption,omitempty"`
+	Header  []string   `json:"header"`
+	Rows    [][]string `json:"rows"`
+	// Groups, when set (one per row), puts the colour swatch of that
+	// group before the row's first cell (-1: none), so a table's arms
+	// match the charts.
+	Groups []int `json:"groups,omitempty"`
+	// Links, when set (one per row), makes the first cell a link to
+	// that page-relative address ("" for none).
+	Links []string `json:"links,omitempty"`
+	// Filter, when set, is the header of a column the reader can filter
+	// the rows by (the console's status filter).
+	Filter string `json:"filter,omitempty"`
+	// Empty is shown instead of the table when it has no rows.
+	Empty string `json:"empty,omitempty"`
 }
 
-// Page is a whole report.
+// Fact is one labelled value in a page's summary line.
+type Fact struct {
+	Label string `json:"label"`
+	Value string `json:"value"`
+	// Tone colours the value: "", "good", "warn" or "bad".
+	Tone string `json:"tone,omitempty"`
+}
+
+// Link is a download or navigation link of a page.
+type Link struct {
+	Text string `json:"text"`
+	Href string `json:"href"`
+}
+
+// Page is a whole page.
 type Page struct {
-	Title      string
-	Paragraphs []string
-	Tables     []Table
-	Charts     []Chart
-}
-
-// finite keeps the points of s whose coordinates are finite.
-func finite(x, y []float64) plotter.XYs {
-	var out plotter.XYs
-	for i := range x {
-		if i < len(y) && isFinite(x[i]) && isFinite(y[i]) {
-			out = append(out, plotter.XY{X: x[i], Y: y[i]})
-		}
-	}
-	return out
+	Title      string   `json:"title"`
+	Facts      []Fact   `json:"facts,omitempty"`
+	Paragraphs []string `json:"paragraphs,omitempty"`
+	Tables     []Table  `json:"tables,omitempty"`
+	Charts     []Chart  `json:"charts,omitempty"`
+	Links      []Link   `json:"links,omitempty"`
+	// After holds tables shown below the charts (configuration, details).
+	After []Table `json:"after,omitempty"`
 }
 
 func isFinite(v float64) bool { return !math.IsNaN(v) && !math.IsInf(v, 0) }
 
-// stepXYs turns points into a right-continuous staircase.
-func stepXYs(p plotter.XYs) plotter.XYs {
-	var out plotter.XYs
-	for i, q := range p {
-		if i > 0 {
-			out = append(out, plotter.XY{X: q.X, Y: p[i-1].Y})
+// Normalize returns p ready to marshal: chart ids filled in from their
+// position, and step series with repeated X reduced to the last point of
+// each X (the page script needs strictly increasing X).
+func Normalize(p Page) Page {
+	p.Charts = slices.Clone(p.Charts)
+	for i := range p.Charts {
+		c := &p.Charts[i]
+		if c.ID == "" {
+			c.ID = "chart-" + strconv.Itoa(i+1)
 		}
-		out = append(out, q)
+		c.Series = slices.Clone(c.Series)
+		for j := range c.Series {
+			c.Series[j] = dedupeX(c.Series[j])
+		}
 	}
-	return out
+	return p
 }
 
-// groupColor returns the colour of group g.
-func groupColor(g int) color.Color { return plotutil.Color(g) }
-
-// build draws c on a gonum plot.
-func build(c Chart) (*plot.Plot, error) {
-	p := plot.New()
-	p.Title.Text = c.Title
-	p.X.Label.Text = c.XLabel
-	p.Y.Label.Text = c.YLabel
-	p.Add(plotter.NewGrid())
-	p.Legend.Top = true
-	p.Legend.Left = true
-	// Bands first, so that lines are drawn over them.
-	for _, s := range c.Series {
-		if len(s.Low) == 0 || len(s.High) == 0 {
-			continue
-		}
-		lo, hi := finite(s.X, s.Low), finite(s.X, s.High)
-		if len(lo) < 2 || len(lo) != len(hi) {
-			continue
-		}
-		ring := append(plotter.XYs{}, hi...)
-		for i := len(lo) - 1; i >= 0; i-- {
-			ring = append(ring, lo[i])
-		}
-		poly, err := plotter.NewPolygon(ring)
-		if err != nil {
-			return nil, fmt.Errorf("chart %q: band %q: %w", c.Title, s.Name, err)
-		}
-		r, g, b, _ := groupColor(s.Group).RGBA()
-		poly.Color = color.NRGBA{R: uint8(r >> 8), G: uint8(g >> 8), B: uint8(b >> 8), A: 60}
-		poly.LineStyle.Width = 0
-		p.Add(poly)
+// dedupeX keeps, for each run of equal X, its last point (and drops
+// points out of order), so that X increases strictly.
+func dedupeX(s Series) Series {
+	n := len(s.X)
+	if n == 0 {
+		return s
 	}
-	for _, s := range c.Series {
-		pts := finite(s.X, s.Y)
-		if len(pts) == 0 {
+	keep := make([]int, 0, n)
+	for i := range n {
+		if !isFinite(s.X[i]) {
 			continue
 		}
-		if s.Step {
-			pts = stepXYs(pts)
+		if k := len(keep); k > 0 && s.X[i] <= s.X[keep[k-1]] {
+			if s.X[i] == s.X[keep[k-1]] {
+				keep[k-1] = i
+			}
+			continue
 		}
-		l, err := plotter.NewLine(pts)
-		if err != nil {
-			return nil, fmt.Errorf("chart %q: series %q: %w", c.Title, s.Name, err)
-		}
-		l.Color = groupColor(s.Group)
-		l.Width = vg.Points(1.5)
-		if s.Dashed {
-			l.Dashes = []vg.Length{vg.Points(5), vg.Points(3)}
-		}
-		p.Add(l)
-		if s.Name != "" {
-			p.Legend.Add(s.Name, l)
-		}
+		keep = append(keep, i)
 	}
-	return p, nil
+	if len(keep) == n {
+		return s
+	}
+	pick := func(v Values) Values {
+		if len(v) != n {
+			return v
+		}
+		out := make(Values, len(keep))
+		for j, i := range keep {
+			out[j] = v[i]
+		}
+		return out
+	}
+	s.X, s.Y, s.Low, s.High = pick(s.X), pick(s.Y), pick(s.Low), pick(s.High)
+	return s
 }
 
-// SVG renders c as a standalone SVG document of the given size.
-func SVG(c Chart, width, height vg.Length) ([]byte, error) {
-	p, err := build(c)
-	if err != nil {
+// MarshalPage returns the JSON of p after Normalize. Go's encoder escapes
+// <, > and &, so the text is safe inside an HTML script element.
+func MarshalPage(p Page) ([]byte, error) {
+	var buf bytes.Buffer
+	enc := json.NewEncoder(&buf)
+	if err := enc.Encode(Normalize(p)); err != nil {
 		return nil, err
 	}
-	canvas := vgsvg.New(width, height)
-	p.Draw(draw.New(canvas))
-	var buf bytes.Buffer
-	if _, err := canvas.WriteTo(&buf); err != nil {
-		return nil, fmt.Errorf("chart %q: write svg: %w", c.Title, err)
-	}
-	return buf.Bytes(), nil
+	return bytes.TrimSpace(buf.Bytes()), nil
 }
 
-// inlineSVG strips the XML prologue so the SVG can sit inside HTML.
-func inlineSVG(doc []byte) template.HTML {
-	if i := bytes.Index(doc, []byte("<svg")); i >= 0 {
-		doc = doc[i:]
-	}
-	return template.HTML(doc) // produced by the SVG canvas, not user text
-}
+// ptr returns a pointer to x, for Axis bounds.
+func ptr(x float64) *float64 { return &x }
 
-var page = template.Must(template.New("page").Parse(`<!DOCTYPE html>
-<html lang="en">
-<head>
-<meta charset="utf-8">
-<title>{{.Title}}</title>
-<style>
-body { font-family: sans-serif; max-width: 60rem; margin: 2rem auto; color: #222; }
-table { border-collapse: collapse; margin: 1rem 0; }
-th, td { border: 1px solid #ccc; padding: 0.25rem 0.6rem; text-align: right; }
-th:first-child, td:first-child { text-align: left; }
-caption { text-align: left; font-weight: bold; padding-bottom: 0.3rem; }
-figure { margin: 1.5rem 0; }
-figcaption { font-weight: bold; margin-bottom: 0.3rem; }
-</style>
-</head>
-<body>
-<h1>{{.Title}}</h1>
-{{range .Paragraphs}}<p>{{.}}</p>
-{{end}}{{range .Tables}}<table>
-<caption>{{.Caption}}</caption>
-<thead><tr>{{range .Header}}<th>{{.}}</th>{{end}}</tr></thead>
-<tbody>
-{{range .Rows}}<tr>{{range .}}<td>{{.}}</td>{{end}}</tr>
-{{end}}</tbody>
-</table>
-{{end}}{{range .Charts}}<figure id="{{.ID}}">
-<figcaption>{{.Title}}</figcaption>
-{{.SVG}}
-</figure>
-{{end}}</body>
-</html>
-`))
-
-type renderedChart struct {
-	ID, Title string
-	SVG       template.HTML
-}
-
-// WriteHTML renders p as one self-contained HTML document with the charts
-// inline.
-func WriteHTML(w io.Writer, p Page) error {
-	data := struct {
-		Page
-		Charts []renderedChart
-	}{Page: p}
-	for i, c := range p.Charts {
-		doc, err := SVG(c, DefaultWidth, DefaultHeight)
-		if err != nil {
-			return fmt.Errorf("report: %w", err)
-		}
-		id := c.ID
-		if id == "" {
-			id = fmt.Sprintf("chart-%d", i+1)
-		}
-		data.Charts = append(data.Charts, renderedChart{ID: id, Title: c.Title, SVG: inlineSVG(doc)})
-	}
-	if err := page.Execute(w, data); err != nil {
-		return fmt.Errorf("report: render page: %w", err)
-	}
-	return nil
-}
-
-// WriteDir writes p to dir/index.html, creating dir if needed.
-func WriteDir(dir string, p Page) (err error) {
-	if err := os.MkdirAll(dir, 0o755); err != nil {
-		return fmt.Errorf("report: %w", err)
-	}
-	path := filepath.Join(dir, "index.html")
-	var buf bytes.Buffer
-	if err := WriteHTML(&buf, p); err != nil {
-		return err
-	}
-	if err := os.WriteFile(path, buf.Bytes(), 0o644); err != nil {
-		return fmt.Errorf("report: %w", err)
-	}
-	return nil
+// shareAxis is the y axis of weights and probabilities.
+func shareAxis(label string) Axis {
+	return Axis{Label: label, Unit: UnitPercent, Min: ptr(0), Max: ptr(1)}
 }
 
 // Band is a mean curve with its standard error, e.g. one policy's
@@ -267,9 +263,10 @@ type Band struct {
 
 // RegretChart draws cumulative regret per policy with ±2 SE bands.
 func RegretChart(bands []Band) Chart {
-	c := Chart{ID: "regret", Title: "Cumulative regret (mean ± 2 SE over runs)", XLabel: "hours", YLabel: "conversions lost"}
+	c := Chart{ID: "regret", Title: "Cumulative regret", Note: "Mean over runs; shaded: ± 2 standard errors.",
+		X: Axis{Label: "time since start", Unit: UnitHours}, Y: Axis{Label: "conversions lost", Min: ptr(0)}}
 	for i, b := range bands {
-		lo, hi := make([]float64, len(b.Mean)), make([]float64, len(b.Mean))
+		lo, hi := make(Values, len(b.Mean)), make(Values, len(b.Mean))
 		for j := range b.Mean {
 			se := 0.0
 			if j < len(b.SE) {
@@ -277,7 +274,7 @@ func RegretChart(bands []Band) Chart {
 			}
 			lo[j], hi[j] = b.Mean[j]-2*se, b.Mean[j]+2*se
 		}
-		c.Series = append(c.Series, Series{Name: b.Name, X: b.X, Y: b.Mean, Low: lo, High: hi, Group: i})
+		c.Series = append(c.Series, Series{Name: b.Name, X: b.X, Y: b.Mean, Low: lo, High: hi, Band: "± 2 SE", Group: i})
 	}
 	return c
 }
@@ -288,32 +285,48 @@ type ArmSeries struct {
 	Y   []float64
 }
 
-// TrafficShareChart draws each arm's traffic share over time.
+// TrafficShareChart draws each arm's traffic share over time as steps
+// (a weight holds until the next publication).
 func TrafficShareChart(id, title string, hours []float64, arms []ArmSeries) Chart {
-	c := Chart{ID: id, Title: title, XLabel: "hours", YLabel: "traffic share"}
+	c := Chart{ID: id, Title: title, X: Axis{Label: "time since start", Unit: UnitHours}, Y: shareAxis("traffic share")}
 	for i, a := range arms {
 		c.Series = append(c.Series, Series{Name: a.Arm, X: hours, Y: a.Y, Group: i, Step: true})
 	}
 	return c
 }
 
-// ArmCVR is one arm's conversion-rate estimates over time; True is
-// optional (known only in simulations).
+// ProbBestChart draws each arm's probability of being the best arm over
+// time.
+func ProbBestChart(hours []float64, arms []ArmSeries) Chart {
+	c := Chart{ID: "pbest", Title: "Probability of being the best arm", Note: "Under the model's posterior at each refit.",
+		X: Axis{Label: "time since start", Unit: UnitHours}, Y: shareAxis("P(best)")}
+	for i, a := range arms {
+		c.Series = append(c.Series, Series{Name: a.Arm, X: hours, Y: a.Y, Group: i})
+	}
+	return c
+}
+
+// ArmCVR is one arm's conversion-rate estimates over time. Low and High
+// (the eventual rate's credible interval) and True (known only in
+// simulations) are optional.
 type ArmCVR struct {
 	Arm                      string
 	Observed, Eventual, True []float64
+	Low, High                []float64
 }
 
-// CVRChart draws observed, eventual and (when known) true CVR per arm:
-// eventual solid, observed dashed, true as a thin dotted-style line.
+// CVRChart draws observed (dashed), eventual (solid, with its credible
+// band when given) and, when known, true (dotted) CVR per arm.
 func CVRChart(title string, hours []float64, arms []ArmCVR) Chart {
-	c := Chart{ID: "cvr", Title: title, XLabel: "hours", YLabel: "conversion rate"}
+	c := Chart{ID: "cvr", Title: title, X: Axis{Label: "time since start", Unit: UnitHours}, Y: Axis{Label: "conversion rate", Unit: UnitPercent, Min: ptr(0)}}
 	for i, a := range arms {
-		c.Series = append(c.Series,
-			Series{Name: a.Arm + " eventual", X: hours, Y: a.Eventual, Group: i},
-			Series{Name: a.Arm + " observed", X: hours, Y: a.Observed, Group: i, Dashed: true})
+		ev := Series{Name: a.Arm, Role: "eventual", X: hours, Y: a.Eventual, Group: i}
+		if len(a.Low) > 0 && len(a.High) > 0 {
+			ev.Low, ev.High, ev.Band = a.Low, a.High, "95% credible interval of the eventual rate"
+		}
+		c.Series = append(c.Series, ev, Series{Name: a.Arm, Role: "observed", X: hours, Y: a.Observed, Group: i, Style: StyleDashed})
 		if len(a.True) > 0 {
-			c.Series = append(c.Series, Series{Name: a.Arm + " true", X: hours, Y: a.True, Group: i, Step: true, Dashed: true})
+			c.Series = append(c.Series, Series{Name: a.Arm, Role: "true", X: hours, Y: a.True, Group: i, Step: true, Style: StyleDotted})
 		}
 	}
 	return c
@@ -331,7 +344,7 @@ type ArmDelay struct {
 // DelayCDFChart draws, per arm, the empirical CDF of observed delays as a
 // staircase against the fitted delay CDF (and the true one when known).
 func DelayCDFChart(title string, arms []ArmDelay) (Chart, error) {
-	c := Chart{ID: "delay-cdf", Title: title, XLabel: "delay (hours)", YLabel: "P(delay ≤ x)"}
+	c := Chart{ID: "delay-cdf", Title: title, X: Axis{Label: "delay", Unit: UnitHours, Min: ptr(0)}, Y: shareAxis("P(delay ≤ x)")}
 	for i, a := range arms {
 		if len(a.GridHours) != len(a.FittedCDF) || (len(a.TrueCDF) > 0 && len(a.TrueCDF) != len(a.GridHours)) {
 			return Chart{}, errors.New("report: delay CDF grid and values differ in length")
@@ -347,10 +360,10 @@ func DelayCDFChart(title string, arms []ArmDelay) (Chart, error) {
 			ecdf = append([]float64{0}, ecdf...)
 		}
 		c.Series = append(c.Series,
-			Series{Name: a.Arm + " observed", X: d, Y: ecdf, Group: i, Step: true},
-			Series{Name: a.Arm + " fitted", X: a.GridHours, Y: a.FittedCDF, Group: i, Dashed: true})
+			Series{Name: a.Arm, Role: "observed", X: d, Y: ecdf, Group: i, Step: true},
+			Series{Name: a.Arm, Role: "fitted", X: a.GridHours, Y: a.FittedCDF, Group: i, Style: StyleDashed})
 		if len(a.TrueCDF) > 0 {
-			c.Series = append(c.Series, Series{Name: a.Arm + " true", X: a.GridHours, Y: a.TrueCDF, Group: i + len(arms)})
+			c.Series = append(c.Series, Series{Name: a.Arm, Role: "true", X: a.GridHours, Y: a.TrueCDF, Group: i, Style: StyleDotted})
 		}
 	}
 	return c, nil

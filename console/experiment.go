@@ -179,8 +179,8 @@ func ExperimentPage(v View) (report.Page, error) {
 			len(v.History), v.History[0].AsOf, latest.AsOf, time.UnixMilli(origin).UTC().Format("2006-01-02 15:04")))
 	}
 	if v.State != nil {
-		page.Paragraphs = append(page.Paragraphs, fmt.Sprintf("Arm states as of the stored watermark %s; attribution window %v.",
-			fmtMillis(v.State.Watermark), v.State.Layout.Window))
+		page.Paragraphs = append(page.Paragraphs, fmt.Sprintf("Arm states as of the stored watermark %s; attribution window %s.",
+			fmtMillis(v.State.Watermark), consumer.FormatDuration(v.State.Layout.Window)))
 	}
 	page.Tables = append(page.Tables, armTable(v, latest, arms))
 
@@ -278,18 +278,24 @@ func historyCharts(v View, arms []string, asOf []int64, hoursOf func(int64) floa
 		cvr = append(cvr, c)
 	}
 	traffic := report.TrafficShareChart("traffic", "Traffic weights", hours, share)
+	zero := 0.0
 	traffic.Note = "The weights each allocation published; a weight holds until the next one."
 	rates := report.CVRChart("Conversion rate: observed and eventual", hours[:len(hours)-1], cvr)
 	rates.Note = "Observed: conversions so far over clicks, low while clicks are young. Eventual: the model's rate once every click has had its window, with its 95% credible band."
 	if v.Truth != nil {
 		rates.Note += " True: the simulated rate."
 	}
-	return []report.Chart{traffic, report.ProbBestChart(hours[:len(hours)-1], pbest), rates}
+	pb := report.ProbBestChart(hours[:len(hours)-1], pbest)
+	charts := []report.Chart{traffic, pb, rates}
+	for i := range charts {
+		charts[i].X.Min = &zero // hours count from the origin
+	}
+	return charts
 }
 
 // armTable lists each arm as of the latest allocation.
 func armTable(v View, latest *Allocation, arms []string) report.Table {
-	t := report.Table{ID: "arms", Header: []string{"arm", "weight", "clicks", "conversions", "observed CVR", "eventual CVR", "95% interval", "P(best)", "expected loss", "delay fit", "mean delay"}}
+	t := report.Table{ID: "arms", Header: []string{"arm", "weight", "clicks", "conversions", "observed CVR", "eventual CVR (95% interval)", "P(best)", "expected loss", "delay fit", "mean delay"}}
 	if v.Truth != nil {
 		t.Header = append(t.Header, "true CVR")
 	}
@@ -305,7 +311,7 @@ func armTable(v View, latest *Allocation, arms []string) report.Table {
 		}
 	}
 	for i, arm := range arms {
-		row := []string{arm, "–", "–", "–", "–", "–", "–", "–", "–", "–", "–"}
+		row := []string{arm, "–", "–", "–", "–", "–", "–", "–", "–", "–"}
 		if latest != nil {
 			if r := latest.arm(arm); r != nil {
 				name := arm
@@ -316,7 +322,7 @@ func armTable(v View, latest *Allocation, arms []string) report.Table {
 					name += " (blocks settling)"
 				}
 				row = []string{name, fmt.Sprintf("%.3f", latest.Weights[arm]), fmt.Sprint(r.Clicks), fmt.Sprint(r.Conversions),
-					pct(r.ObservedCVR), pct(r.EventualCVR), pct(r.CVRLow) + " – " + pct(r.CVRHigh),
+					pct(r.ObservedCVR), fmt.Sprintf("%s (%s – %s)", pct(r.EventualCVR), pct(r.CVRLow), pct(r.CVRHigh)),
 					fmt.Sprintf("%.3f", r.PBest), pct(r.ExpectedLoss), r.Delay.Family, fmtHours(r.Delay.MeanHours)}
 			}
 		}

@@ -246,7 +246,7 @@ func TestExperimentPageSeries(t *testing.T) {
 		}
 	}
 	rows := page.Tables[0].Rows
-	if len(rows) != 2 || rows[0][1] != "0.200" || rows[1][9] != "weibull" || rows[0][0] != "knitted-scarf (blocks settling)" {
+	if len(rows) != 2 || rows[0][1] != "0.200" || rows[1][8] != "weibull" || rows[0][0] != "knitted-scarf (blocks settling)" {
 		t.Errorf("arm table rows %v", rows)
 	}
 	if g := page.Tables[0].Groups; len(g) != 2 || g[0] != 0 || g[1] != 1 {

@@ -83,7 +83,7 @@ func (s ExperimentSettings) Fields() []SettingField {
 	}
 	f64 := func(p *float64) string { return strconv.FormatFloat(*p, 'g', -1, 64) }
 	fields := []field{
-		{"window", fmtDuration(e.Window), func(x ExperimentConfig) bool { return x.Window != 0 }, s.defaults.Window != builtIn.Window},
+		{"window", FormatDuration(e.Window), func(x ExperimentConfig) bool { return x.Window != 0 }, s.defaults.Window != builtIn.Window},
 		{"policy", e.Policy, func(x ExperimentConfig) bool { return x.Policy != "" }, s.defaults.Policy != builtIn.Policy},
 		{"delay", e.Delay, func(x ExperimentConfig) bool { return x.Delay != "" }, s.defaults.Delay != builtIn.Delay},
 		{"floor", f64(e.Floor), func(x ExperimentConfig) bool { return x.Floor != nil }, neq(s.defaults.Floor, builtIn.Floor)},
@@ -113,7 +113,7 @@ func (s ExperimentSettings) Fields() []SettingField {
 		key string
 		d   time.Duration
 	}{{"pipeline.refit_every", s.RefitEvery}, {"pipeline.publish_every", s.PublishEvery}, {"pipeline.lateness", s.Lateness}} {
-		out = append(out, SettingField{Key: p.key, Value: fmtDuration(p.d), Source: SourcePipeline})
+		out = append(out, SettingField{Key: p.key, Value: FormatDuration(p.d), Source: SourcePipeline})
 	}
 	return out
 }
@@ -126,10 +126,16 @@ func neq[T comparable](a, b *T) bool {
 	return *a != *b
 }
 
-// fmtDuration prints whole days as "7d", else Go's form.
-func fmtDuration(d time.Duration) string {
-	if d > 0 && d%(24*time.Hour) == 0 {
-		return fmt.Sprintf("%dd", d/(24*time.Hour))
+// FormatDuration prints a whole number of days, hours, minutes or seconds
+// in that unit ("7d", "2h", "90s"), else Go's form.
+func FormatDuration(d time.Duration) string {
+	for _, u := range []struct {
+		d    time.Duration
+		name string
+	}{{24 * time.Hour, "d"}, {time.Hour, "h"}, {time.Minute, "m"}, {time.Second, "s"}} {
+		if d > 0 && d%u.d == 0 {
+			return fmt.Sprintf("%d%s", d/u.d, u.name)
+		}
 	}
 	return d.String()
 }

@@ -200,8 +200,8 @@ func writeDemoReport(ctx context.Context, dir string, sc sim.Scenario, loop *clo
 	v := console.View{
 		ID:    sc.Name,
 		Title: "ripen demo: " + sc.Name,
-		Notes: []string{sc.Description, fmt.Sprintf("Simulated traffic: %g clicks per hour on average over %v, split by the published weights; refit every %v; attribution window %v.",
-			sc.ClicksPerHour, sc.Horizon.D(), sc.UpdateInterval.D(), sc.Window.D())},
+		Notes: []string{sc.Description, fmt.Sprintf("Simulated traffic: %g clicks per hour on average over %s, split by the published weights; refit every %s; attribution window %s.",
+			sc.ClicksPerHour, consumer.FormatDuration(sc.Horizon.D()), consumer.FormatDuration(sc.UpdateInterval.D()), consumer.FormatDuration(sc.Window.D()))},
 		History: hist,
 		State:   ex,
 		Origin:  sim.Start,

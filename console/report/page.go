@@ -60,6 +60,7 @@ var shell = template.Must(template.New("page").Parse(`<!DOCTYPE html>
 <meta charset="utf-8">
 <meta name="viewport" content="width=device-width, initial-scale=1">
 <meta name="generator" content="{{.Generator}}">
+<link rel="icon" href="data:,">
 <title>{{.Title}}</title>
 {{if .Inline}}<style>{{.UPlotCSS}}
 {{.CSS}}</style>

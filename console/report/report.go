@@ -316,9 +316,19 @@ type ArmCVR struct {
 }
 
 // CVRChart draws observed (dashed), eventual (solid, with its credible
-// band when given) and, when known, true (dotted) CVR per arm.
+// band when given) and, when known, true (dotted) CVR per arm. The y axis
+// stops at cvrHeadroom times the highest line, so that the wide bands of
+// the first hours do not flatten the lines (the band is clipped there).
 func CVRChart(title string, hours []float64, arms []ArmCVR) Chart {
 	c := Chart{ID: "cvr", Title: title, X: Axis{Label: "time since start", Unit: UnitHours}, Y: Axis{Label: "conversion rate", Unit: UnitPercent, Min: ptr(0)}}
+	var top, bandTop float64
+	for _, a := range arms {
+		top = max(top, maxFinite(a.Observed), maxFinite(a.Eventual), maxFinite(a.True))
+		bandTop = max(bandTop, maxFinite(a.High))
+	}
+	if top > 0 && bandTop > cvrHeadroom*top {
+		c.Y.Max = ptr(cvrHeadroom * top)
+	}
 	for i, a := range arms {
 		ev := Series{Name: a.Arm, Role: "eventual", X: hours, Y: a.Eventual, Group: i}
 		if len(a.Low) > 0 && len(a.High) > 0 {
@@ -330,6 +340,20 @@ func CVRChart(title string, hours []float64, arms []ArmCVR) Chart {
 		}
 	}
 	return c
+}
+
+// cvrHeadroom bounds the y axis of CVRChart relative to its highest line.
+const cvrHeadroom = 1.5
+
+// maxFinite is the largest finite value of xs (0 if none).
+func maxFinite(xs []float64) float64 {
+	var m float64
+	for _, x := range xs {
+		if isFinite(x) && x > m {
+			m = x
+		}
+	}
+	return m
 }
 
 // ArmDelay is one arm's delay data: the delays of the conversions observed

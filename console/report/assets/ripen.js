@@ -270,29 +270,41 @@
         next[spec.id] = old;
         return;
       }
-      if (old) old.u.destroy();
+      if (old) {
+        if (observer) observer.unobserve(old.box.plot);
+        old.u.destroy();
+      }
       var box = chartFigure(spec);
       grid.appendChild(box.fig);
       if (!joined) {
         box.plot.appendChild(el("p", "empty", "No data yet."));
         return;
       }
-      var width = Math.max(260, Math.floor(box.plot.clientWidth || grid.clientWidth || 600));
+      var width = Math.max(240, Math.floor(box.plot.clientWidth || grid.clientWidth || 600));
       var u = buildChart(box, spec, joined, width);
       next[spec.id] = { u: u, sig: sig, box: box, joined: joined, spec: spec };
+      if (observer) observer.observe(box.plot);
     });
     Object.keys(charts).forEach(function (id) {
-      if (!next[id]) charts[id].u.destroy();
+      if (!next[id]) {
+        if (observer) observer.unobserve(charts[id].box.plot);
+        charts[id].u.destroy();
+      }
     });
     charts = next;
   }
 
   function resizeCharts() {
-    Object.keys(charts).forEach(function (id) {
-      var c = charts[id], w = Math.max(260, Math.floor(c.box.plot.clientWidth));
-      if (w && w !== c.u.width) c.u.setSize({ width: w, height: plotHeight(w) });
-    });
+    Object.keys(charts).forEach(function (id) { fit(charts[id]); });
   }
+
+  // fit sizes a chart to its box.
+  function fit(c) {
+    var w = Math.max(240, Math.floor(c.box.plot.clientWidth));
+    if (w && w !== c.u.width) c.u.setSize({ width: w, height: plotHeight(w) });
+  }
+
+  var observer = window.ResizeObserver ? new ResizeObserver(function () { resizeCharts(); }) : null;
 
   function filterValue() {
     var m = /[?&]status=([^&#]*)/.exec(location.search);

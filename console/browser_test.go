@@ -260,6 +260,15 @@ func TestConsoleInBrowser(t *testing.T) {
 			}
 			shot(t, bctx, filepath.Join(shots, "experiment-"+size.name+".png"))
 			blog.check(t, "experiment")
+
+			// The service page.
+			if err := chromedp.Do(bctx, chromedp.Navigate(base+"/service"), chromedp.WaitVisible(chromedp.CSS(`#table-partitions`))); err != nil {
+				t.Fatal(err)
+			}
+			if text := eval(`document.querySelector(".facts").textContent`); !strings.Contains(text, "Redis") || !strings.Contains(text, "watermark") {
+				t.Errorf("service facts %q", text)
+			}
+			blog.check(t, "service")
 		})
 	}
 	t.Logf("screenshots in %s", shots)

@@ -290,11 +290,15 @@ func (c *server) experimentPage(ctx context.Context, r *http.Request) (report.Pa
 		return report.Page{}, err
 	}
 	ex, err := store.Load(ctx, id)
+	var notes []string
 	switch {
 	case errors.Is(err, state.ErrNotFound):
 		ex = nil
-	case err != nil:
+	case err != nil && state.IsRetriable(err):
 		return report.Page{}, err
+	case err != nil:
+		c.o.Logger.Warn("console: arm states unreadable", zap.String("experiment", id), zap.Error(err))
+		ex, notes = nil, []string{"The stored arm states could not be read (see the service's log); the delay charts are left out."}
 	}
 	var wm int64
 	if ex != nil {
@@ -315,7 +319,7 @@ func (c *server) experimentPage(ctx context.Context, r *http.Request) (report.Pa
 		if err != nil {
 			return report.Page{}, err
 		}
-		page, err := ExperimentPage(View{ID: id, History: hist, State: ex, Links: []report.Link{
+		page, err := ExperimentPage(View{ID: id, History: hist, State: ex, Notes: notes, Links: []report.Link{
 			{Text: "Allocation history (JSON Lines)", Href: pathJSONL + "?id=" + url.QueryEscape(id)},
 			{Text: "Allocation history (CSV)", Href: pathCSV + "?id=" + url.QueryEscape(id)},
 		}})

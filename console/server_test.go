@@ -31,9 +31,11 @@ type storeSource struct {
 	wm    int64
 }
 
-func (s *storeSource) Ready(context.Context) error { return errors.New("not in the consumer group yet") }
-func (s *storeSource) Store() *state.Store         { return s.store }
-func (s *storeSource) Watermark() (int64, bool)    { return s.wm, s.wm != 0 }
+func (s *storeSource) Ready(context.Context) error {
+	return errors.New("not in the consumer group yet")
+}
+func (s *storeSource) Store() *state.Store      { return s.store }
+func (s *storeSource) Watermark() (int64, bool) { return s.wm, s.wm != 0 }
 func (s *storeSource) Settings(id string) consumer.ExperimentSettings {
 	return s.cfg.SettingsFor(id)
 }

@@ -48,7 +48,7 @@ func NewTerminalView(w io.Writer, sc sim.Scenario, store string) *TerminalView {
 // Header prints the run's first lines (on a terminal the frame redraws
 // over them).
 func (v *TerminalView) Header(lines ...string) {
-	fmt.Fprintf(v.w, "ripen demo: %s, %v of simulated traffic, state store %s\n", v.sc.Name, v.sc.Horizon.D(), v.store)
+	fmt.Fprintf(v.w, "ripen demo: %s, %s of simulated traffic, state store %s\n", v.sc.Name, consumer.FormatDuration(v.sc.Horizon.D()), v.store)
 	for _, l := range lines {
 		fmt.Fprintln(v.w, l)
 	}
@@ -107,8 +107,8 @@ func (v *TerminalView) table(w io.Writer, a consumer.Allocation, at int64) {
 // Summary prints the end of a run.
 func (v *TerminalView) Summary(res *Result, reportPath string) {
 	a := res.History[len(res.History)-1]
-	fmt.Fprintf(v.w, "\nripen demo: %v of traffic (%d clicks, %d conversions) in %.1fs; %d allocations published; final status %s, leader %s (best arm: %s)\n\n",
-		v.sc.Horizon.D(), sum(res.Clicks), sum(res.Conversions), time.Since(v.began).Seconds(), len(res.History), a.Status, a.Leader, v.best)
+	fmt.Fprintf(v.w, "\nripen demo: %s of traffic (%d clicks, %d conversions) in %.1fs; %d allocations published; final status %s, leader %s (best arm: %s)\n\n",
+		consumer.FormatDuration(v.sc.Horizon.D()), sum(res.Clicks), sum(res.Conversions), time.Since(v.began).Seconds(), len(res.History), a.Status, a.Leader, v.best)
 	at, _ := time.Parse(time.RFC3339Nano, a.AsOf)
 	v.table(v.w, a, at.UnixMilli())
 	fmt.Fprintf(v.w, "\nreport: %s\n", reportPath)

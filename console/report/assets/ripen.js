@@ -52,10 +52,10 @@
   }
 
   // hourSplits ticks an hour axis at round hours or days, about one tick
-  // per 90 CSS pixels.
+  // per 75 CSS pixels.
   function hourSplits(u, axisIdx, min, max) {
     var width = u.bbox.width / (window.devicePixelRatio || 1);
-    var want = Math.max(2, Math.floor(width / 90));
+    var want = Math.max(3, Math.floor(width / 75));
     var span = max - min, step = HOUR_STEPS[HOUR_STEPS.length - 1];
     for (var i = 0; i < HOUR_STEPS.length; i++) {
       if (span / HOUR_STEPS[i] <= want) { step = HOUR_STEPS[i]; break; }
@@ -349,7 +349,8 @@
       return wrap;
     }
     var scroller = el("div", "scroll");
-    var tab = el("table");
+    // A wide table turns into one card per row on a phone (ripen.css).
+    var tab = el("table", head.length >= 4 ? "wide" : null);
     var thead = el("thead"), tr = el("tr");
     head.forEach(function (h) { tr.appendChild(el("th", null, h)); });
     thead.appendChild(tr);
@@ -375,6 +376,7 @@
           }
         } else {
           td.textContent = cell;
+          td.setAttribute("data-label", head[j] || "");
         }
         row.appendChild(td);
       });

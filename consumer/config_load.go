@@ -352,7 +352,7 @@ var flagSpecs = []flagSpec{
 	{"control-topic", "control topic `name`", "kafka.control_topic"},
 	{"redis", "Redis `URL` (redis:// or rediss://)", "redis.url"},
 	{"prefix", "Redis key `prefix`", "redis.prefix"},
-	{"http", "HTTP listen `address` for /metrics, /livez, /readyz and /v1", "http"},
+	{"http", "HTTP listen `address` for /metrics, /livez, /readyz, /v1 and the web console", "http"},
 	{"log", "log `encoding`: json or console", "log"},
 }
 

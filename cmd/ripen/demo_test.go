@@ -4,7 +4,9 @@ import (
 	"bufio"
 	"bytes"
 	"context"
+	"io"
 	"math"
+	"net/http"
 	"os"
 	"os/exec"
 	"path/filepath"
@@ -147,4 +149,53 @@ func readAllocations(t *testing.T, path string) []console.Allocation {
 		t.Errorf("%d messages but %d distinct seqs: an allocation was read twice", len(raw), len(allocs))
 	}
 	return allocs
+}
+
+// TestDemoKeepServing: with --keep-serving the demo writes its report,
+// then keeps its console up until interrupted, and stops cleanly.
+func TestDemoKeepServing(t *testing.T) {
+	ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
+	defer cancel()
+	runCtx, interrupt := context.WithCancel(ctx)
+	defer interrupt()
+	dir := filepath.Join(t.TempDir(), "report")
+	pr, pw := io.Pipe()
+	done := make(chan error, 1)
+	go func() {
+		cmd := newDemoCmd()
+		cmd.SetOut(pw)
+		cmd.SetErr(io.Discard)
+		cmd.SetArgs([]string{"--days", "0.5", "--store", closedloop.StoreEmbedded, "--report", dir, "--keep-serving"})
+		err := cmd.ExecuteContext(runCtx)
+		pw.Close()
+		done <- err
+	}()
+	var consoleURL string
+	lines := bufio.NewScanner(pr)
+	for lines.Scan() {
+		if u, ok := strings.CutSuffix(lines.Text(), " (serving until interrupted)"); ok {
+			consoleURL = strings.TrimPrefix(u, "console: ")
+			break
+		}
+	}
+	go func() { _, _ = io.Copy(io.Discard, pr) }()
+	if consoleURL == "" {
+		t.Fatalf("the demo ended without serving its console: %v", <-done)
+	}
+	if _, err := os.Stat(filepath.Join(dir, "index.html")); err != nil {
+		t.Errorf("report not written before serving: %v", err)
+	}
+	resp, err := http.Get(consoleURL + "console/api/experiments")
+	if err != nil {
+		t.Fatal(err)
+	}
+	body, _ := io.ReadAll(resp.Body)
+	resp.Body.Close()
+	if resp.StatusCode != http.StatusOK || !strings.Contains(string(body), "quillmoss-hero") {
+		t.Errorf("console after the run: %d %s", resp.StatusCode, body)
+	}
+	interrupt()
+	if err := <-done; err != nil {
+		t.Errorf("demo after the interrupt: %v", err)
+	}
 }

@@ -258,6 +258,10 @@ func TestConsoleInBrowser(t *testing.T) {
 			if n := eval(hostileProbe); n != "0" {
 				t.Errorf("experiment page: %s elements made from names", n)
 			}
+			// Nothing was fetched from anywhere but the console.
+			if others := eval(`JSON.stringify(performance.getEntriesByType("resource").map(function (e) { return e.name; }).filter(function (u) { return u.indexOf(location.origin + "/") !== 0; }))`); others != "[]" {
+				t.Errorf("requests beyond the console: %s", others)
+			}
 			shot(t, bctx, filepath.Join(shots, "experiment-"+size.name+".png"))
 			blog.check(t, "experiment")
 

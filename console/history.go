@@ -72,6 +72,9 @@ func cell(s string) string {
 // (self-contained), and its allocation history, raw as read, to
 // dir/allocations.jsonl and as CSV to dir/allocations.csv.
 func WriteExperimentReport(dir string, v View, raw [][]byte) error {
+	if v.Links == nil {
+		v.Links = []report.Link{{Text: "Allocation history (JSON Lines)", Href: "./allocations.jsonl"}, {Text: "Allocation history (CSV)", Href: "./allocations.csv"}}
+	}
 	page, err := ExperimentPage(v)
 	if err != nil {
 		return err

@@ -38,11 +38,15 @@ const (
 	StyleDotted = "dotted"
 )
 
+// valueDigits is the precision of chart coordinates in JSON.
+const valueDigits = 7
+
 // Values are chart coordinates; NaN and infinities marshal as null (a gap).
 type Values []float64
 
-// MarshalJSON writes the values with null for non-finite ones, with the
-// shortest representation that reads back to the same float64.
+// MarshalJSON writes the values with null for non-finite ones, to
+// valueDigits significant digits (more than a chart can show; it halves
+// the size of a long history).
 func (v Values) MarshalJSON() ([]byte, error) {
 	if v == nil {
 		return []byte("null"), nil
@@ -54,7 +58,7 @@ func (v Values) MarshalJSON() ([]byte, error) {
 			b = append(b, ',')
 		}
 		if isFinite(x) {
-			b = strconv.AppendFloat(b, x, 'g', -1, 64)
+			b = strconv.AppendFloat(b, x, 'g', valueDigits, 64)
 		} else {
 			b = append(b, "null"...)
 		}

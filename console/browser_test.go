@@ -215,6 +215,23 @@ func TestConsoleInBrowser(t *testing.T) {
 				t.Errorf("list: %s elements made from names", n)
 			}
 			shot(t, bctx, filepath.Join(shots, "list-"+size.name+".png"))
+			// The status filter: the menu offers the statuses present and
+			// keeps the choice in the address.
+			status := eval(`document.querySelector("#filter-experiments").options[1].value`)
+			if err := chromedp.Do(bctx, chromedp.Evaluate[chromedp.Void](`(function () {
+				var s = document.querySelector("#filter-experiments");
+				s.value = s.options[1].value;
+				s.dispatchEvent(new Event("change"));
+			})()`)); err != nil {
+				t.Fatal(err)
+			}
+			if _, err := chromedp.Run(bctx, chromedp.Poll[bool](`location.search.indexOf("status=") >= 0 && document.querySelector("#filter-experiments").value !== ""`,
+				chromedp.WithPollingTimeout(10*time.Second))); err != nil {
+				t.Fatalf("filter: %v", err)
+			}
+			if n := eval(`String(document.querySelectorAll("#table-experiments tbody tr").length)`); n != "1" || status == "" {
+				t.Errorf("filtered by %q: %s rows, want the one experiment", status, n)
+			}
 			blog.check(t, "list")
 
 			// The experiment page: every chart drew lines in the arms'

@@ -388,7 +388,24 @@
     return wrap;
   }
 
+  // lastText is the text part of the page last rendered (all but the
+  // charts); when a refresh leaves it unchanged only the charts update,
+  // so an open menu or a selection is not torn down every few seconds.
+  var lastText = null, lastGrid = null;
+
+  function bump(root) {
+    root.setAttribute("data-rendered", String((Number(root.getAttribute("data-rendered")) || 0) + 1));
+  }
+
   function render(root, page) {
+    var text = JSON.stringify([page.title, page.facts, page.paragraphs, page.tables, page.links, page.after,
+      (page.charts || []).map(function (c) { return [c.id, c.title, c.note]; })]) + location.search;
+    if (text === lastText && lastGrid && lastGrid.parentNode) {
+      drawCharts(lastGrid, page.charts || []);
+      bump(root);
+      return;
+    }
+    lastText = text;
     var title = page.title || "";
     document.title = title ? title + " · ripen" : "ripen";
     var frag = document.createDocumentFragment();
@@ -428,8 +445,9 @@
     root.textContent = "";
     root.appendChild(frag);
     drawCharts(grid, page.charts || []);
+    lastGrid = grid;
     window.scrollTo(0, y);
-    root.setAttribute("data-rendered", String((Number(root.getAttribute("data-rendered")) || 0) + 1));
+    bump(root);
   }
 
   var root, timer = null, src = null, every = 0, status = null;

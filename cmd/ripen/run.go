@@ -73,6 +73,9 @@ commits and exits within shutdown_timeout.`,
 			return &exitError{code: 2, err: err}
 		}
 		log.Info("starting", zap.Any("config", cfg.Redacted()))
+		if !cfg.HTTPAuth.Enabled() && !consumer.IsLoopback(cfg.HTTP) {
+			log.Warn("the web console and /v1 are served without a credential beyond loopback (http_auth.allow_unauthenticated)", zap.String("http", cfg.HTTP))
+		}
 		web, err := console.NewHandler(console.Options{Source: svc, Metrics: reg, Logger: log})
 		if err != nil {
 			return err

@@ -30,9 +30,11 @@ type Config struct {
 	Kafka KafkaConfig `yaml:"kafka"`
 	// Redis is how to reach the state store.
 	Redis RedisConfig `yaml:"redis"`
-	// HTTP is the listen address of /metrics, /livez, /readyz and /v1.
-	// Default: 127.0.0.1:9464.
+	// HTTP is the listen address of /metrics, /livez, /readyz, /v1 and
+	// the web console. Default: 127.0.0.1:9464.
 	HTTP string `yaml:"http"`
+	// HTTPAuth protects the web console and /v1.
+	HTTPAuth HTTPAuthConfig `yaml:"http_auth"`
 	// Log is the log encoding: "json" or "console". Default: json.
 	Log string `yaml:"log"`
 	// Pipeline tunes batching, the watermark and refits.
@@ -242,6 +244,32 @@ func (e ExperimentConfig) MarshalYAML() (any, error) {
 		out.Paused = &e.Paused
 	}
 	return out, nil
+}
+
+// HTTPAuthConfig is the credential that protects the web console and /v1
+// (never /metrics, /livez or /readyz, which scrapers and probes read).
+// With none set they are open, which Validate accepts only on a loopback
+// address unless AllowUnauthenticated says so.
+type HTTPAuthConfig struct {
+	// BearerToken is accepted as "Authorization: Bearer TOKEN", and, for
+	// browsers, as the password of HTTP basic auth with any user name.
+	// Prefer the RIPEN_HTTP_AUTH_BEARER_TOKEN environment variable.
+	// Default: none.
+	BearerToken string `yaml:"bearer_token"`
+	// Username and Password are an HTTP basic-auth credential (both or
+	// neither). Prefer RIPEN_HTTP_AUTH_PASSWORD for the password.
+	// Default: none.
+	Username string `yaml:"username"`
+	Password string `yaml:"password"`
+	// AllowUnauthenticated serves the console and /v1 without a
+	// credential on an address beyond loopback (behind an authenticating
+	// proxy, say). Default: false.
+	AllowUnauthenticated bool `yaml:"allow_unauthenticated"`
+}
+
+// Enabled reports whether a credential is configured.
+func (a HTTPAuthConfig) Enabled() bool {
+	return a.BearerToken != "" || a.Username != "" || a.Password != ""
 }
 
 // LimitsConfig caps cardinality; excess events are dead-lettered with
@@ -499,6 +527,12 @@ func (c Config) Validate() error {
 
 	if err := checkHostPort(c.HTTP); err != nil {
 		v.add("http", "%v", err)
+	} else if a := c.HTTPAuth; !a.Enabled() && !a.AllowUnauthenticated && !IsLoopback(c.HTTP) {
+		v.add("http_auth", "%s listens beyond loopback and the console and /v1 have no credential: set http_auth.bearer_token "+
+			"(RIPEN_HTTP_AUTH_BEARER_TOKEN) or username and password, or allow_unauthenticated: true", c.HTTP)
+	}
+	if a := c.HTTPAuth; (a.Username == "") != (a.Password == "") {
+		v.add("http_auth", "username and password must be given together")
 	}
 	if c.Log != LogJSON && c.Log != LogConsole {
 		v.add("log", "unknown encoding %q (valid: %s, %s)", c.Log, LogJSON, LogConsole)

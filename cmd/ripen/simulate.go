@@ -12,7 +12,7 @@ import (
 
 	"github.com/spf13/cobra"
 
-	"ripen/cmd/ripen/report"
+	"ripen/console/report"
 	"ripen/estimator"
 	"ripen/estimator/sim"
 )

@@ -21,24 +21,11 @@ import (
 )
 
 // Allocation is an allocation message as the console reads it: the
-// published report with its seq, and the settle rule's verdict when the
-// service reports it (absent from older messages).
+// published report with its seq. The report carries the settle rule's
+// verdict (Settle, SettledAt); older messages without it read as not
+// settled with no reason.
 type Allocation struct {
 	consumer.Allocation
-	// SettledAt is when the experiment settled (RFC 3339), if it did.
-	SettledAt string `json:"settled_at,omitempty"`
-	// Settle is the settle rule's verdict at this allocation.
-	Settle *Settle `json:"settle,omitempty"`
-}
-
-// Settle is the settle rule's verdict on one allocation.
-type Settle struct {
-	Settled bool `json:"settled"`
-	// Reason says, in a sentence, why the experiment is not settled yet
-	// (empty once settled).
-	Reason string `json:"reason,omitempty"`
-	// Blocking lists the arms that keep it from settling.
-	Blocking []string `json:"blocking,omitempty"`
 }
 
 // asOfMillis is the allocation's as-of time in Unix ms.
@@ -218,7 +205,7 @@ func experimentFacts(v View, latest *Allocation) []report.Fact {
 	if latest.SettledAt != "" {
 		facts = append(facts, report.Fact{Label: "settled at", Value: latest.SettledAt, Tone: "good"})
 	}
-	if s := latest.Settle; s != nil && !s.Settled && s.Reason != "" {
+	if s := latest.Settle; !s.Settled && s.Reason != "" {
 		facts = append(facts, report.Fact{Label: "not settled because", Value: s.Reason})
 	}
 	return facts
@@ -304,10 +291,8 @@ func armTable(v View, latest *Allocation, arms []string) report.Table {
 		t.Caption = "Arms (no allocation published yet)"
 	} else {
 		t.Caption = "Latest allocation, as of " + latest.AsOf
-		if latest.Settle != nil {
-			for _, a := range latest.Settle.Blocking {
-				blocking[a] = true
-			}
+		for _, a := range latest.Settle.Blocking {
+			blocking[a] = true
 		}
 	}
 	for i, arm := range arms {

@@ -39,10 +39,7 @@ func WriteHistoryCSV(w io.Writer, hist []Allocation) error {
 	}
 	num := func(x float64) string { return strconv.FormatFloat(x, 'g', 8, 64) }
 	for _, a := range hist {
-		settled, reason := "", ""
-		if a.Settle != nil {
-			settled, reason = strconv.FormatBool(a.Settle.Settled), a.Settle.Reason
-		}
+		settled, reason := strconv.FormatBool(a.Settle.Settled), a.Settle.Reason
 		for _, r := range a.Arms {
 			row := []string{strconv.FormatInt(a.Seq, 10), a.AsOf, string(a.Status), a.Policy, cell(a.Leader), cell(r.Arm),
 				num(a.Weights[r.Arm]), strconv.FormatUint(r.Clicks, 10), strconv.FormatUint(r.Conversions, 10),

@@ -238,7 +238,7 @@ func (c *server) listPage(ctx context.Context, _ *http.Request) (report.Page, er
 			age = fmtAge(wm - at)
 		}
 		why := ""
-		if a.Settle != nil && !a.Settle.Settled {
+		if !a.Settle.Settled {
 			why = a.Settle.Reason
 		}
 		rows = append(rows, row{id: id, asOf: at, cells: []string{id, string(a.Status), leader, fmt.Sprint(len(a.Arms)),

@@ -49,13 +49,11 @@ func publish(t *testing.T, store *state.Store, id string, asOf time.Time, leader
 		Arms: []estimator.ArmReport{
 			{Arm: leader, Clicks: 100, Conversions: 9, PBest: 0.9, Weight: 0.7, EventualCVR: 0.1, Delay: estimator.Delay{Family: "exponential"}},
 			{Arm: "=cmd|' /C calc'!A0", Clicks: 80, Conversions: 4, PBest: 0.1, Weight: 0.3, EventualCVR: 0.05, Delay: estimator.Delay{Family: "exponential"}},
-		}}
+		},
+		Settle: estimator.SettleReport{Reason: settle}}
 	body, err := json.Marshal(rep)
 	if err != nil {
 		t.Fatal(err)
-	}
-	if settle != "" {
-		body = append(body[:len(body)-1], fmt.Sprintf(`,"settle":{"settled":false,"reason":%q}}`, settle)...)
 	}
 	seq, err := store.SaveAllocation(ctx, id, body)
 	if err != nil {

@@ -41,7 +41,7 @@ const (
 	// ipSeriesTol is the relative truncation error allowed in the moment
 	// series; ipMinTerms and ipMaxTerms bound its length, and ipMaxRho is
 	// the largest q*max(G) it is used for.
-	ipSeriesTol = 1e-12
+	ipSeriesTol = 1e-10
 	ipMinTerms  = 6
 	ipMaxTerms  = 40
 	ipMaxRho    = 0.5
@@ -104,7 +104,10 @@ type ipNode struct {
 	// unconverted clicks of the latter, gA the largest G of the first
 	// group and dB the largest 1-G of the second, rA and rB the ratios up
 	// to which the series are valid.
-	tA, tB     []float64
+	tA, tB []float64
+	// vA and vB are the same divided by m, and for B with the sign of
+	// its series: vA_m = tA_m/m, vB_m = (-1)^(m+1) tB_m/m.
+	vA, vB     []float64
 	uB, gA, dB float64
 	rA, rB     float64
 	z, sz      float64 // conditional mode of z and Laplace standard deviation
@@ -217,6 +220,7 @@ func (e *ipEval) delayAt(lk, ls float64) (float64, float64) {
 	}
 	gmax := 0.0
 	ew := math.Exp(-xW)
+	invFW := 1 / fw
 	for j := range d.logAge {
 		x := e.ageK[j] * sk
 		var em float64
@@ -225,8 +229,8 @@ func (e *ipEval) delayAt(lk, ls float64) (float64, float64) {
 		} else {
 			em = math.Expm1(-x)
 		}
-		g := -em / fw
-		dl := (1 + em - ew) / fw
+		g := -em * invFW
+		dl := (1 + em - ew) * invFW
 		if g > 1 {
 			g, dl = 1, 0
 		}
@@ -280,11 +284,12 @@ func (n *ipNode) seriesOK(q float64) bool {
 // pendingSeries evaluates the pending term and its first two derivatives
 // in q from the node's moments.
 func pendingSeries(n *ipNode, q float64) (v, d1, d2 float64) {
-	// Group A: v = -sum q^m A_m/m, d1 = -sum m q^(m-1) A_m/m, ...
+	// Group A: v = -sum q^m A_m/m, d1 = -sum q^(m-1) A_m,
+	// d2 = -sum (m-1) q^(m-2) A_m.
 	var va, a1, a2 float64
-	t := n.tA
+	t, tv := n.tA, n.vA
 	for m := len(t); m >= 1; m-- {
-		va = va*q + t[m-1]/float64(m)
+		va = va*q + tv[m-1]
 		a1 = a1*q + t[m-1]
 		if m >= 2 {
 			a2 = a2*q + float64(m-1)*t[m-1]
@@ -297,26 +302,41 @@ func pendingSeries(n *ipNode, q float64) (v, d1, d2 float64) {
 	// Group B: psi(r) = sum (-1)^(m+1) r^m B_m/m.
 	r := q / (1 - q)
 	var pb, b1, b2 float64
-	t = n.tB
+	t, tv = n.tB, n.vB
 	for m := len(t); m >= 1; m-- {
-		sg := 1.0
-		if m%2 == 0 {
-			sg = -1
-		}
-		pb = pb*r + sg*t[m-1]/float64(m)
-		b1 = b1*r + sg*t[m-1]
+		pb = pb*r + tv[m-1]
+		sg := float64(m) * tv[m-1] // (-1)^(m+1) B_m
+		b1 = b1*r + sg
 		if m >= 2 {
-			b2 = b2*r + sg*float64(m-1)*t[m-1]
+			b2 = b2*r + float64(m-1)*sg
 		}
 	}
 	pb *= r
 	om := 1 - q
 	rp := 1 / (om * om)
-	rpp := 2 / (om * om * om)
+	rpp := 2 * rp / om
 	v += n.uB*math.Log1p(-q) + pb
 	d1 += -n.uB/om + b1*rp
-	d2 += -n.uB/(om*om) + b2*rp*rp + b1*rpp
+	d2 += -n.uB*rp + b2*rp*rp + b1*rpp
 	return v, d1, d2
+}
+
+// pendingValue is pendingSeries without the derivatives.
+func pendingValue(n *ipNode, q float64) float64 {
+	var va float64
+	for i := len(n.vA) - 1; i >= 0; i-- {
+		va = va*q + n.vA[i]
+	}
+	v := -va * q
+	if n.uB == 0 {
+		return v
+	}
+	r := q / (1 - q)
+	var pb float64
+	for i := len(n.vB) - 1; i >= 0; i-- {
+		pb = pb*r + n.vB[i]
+	}
+	return v + n.uB*math.Log1p(-q) + pb*r
 }
 
 // setMoments fills the node's moments, from e.g and e.dl, with enough terms
@@ -354,6 +374,17 @@ func (e *ipEval) setMoments(n *ipNode, qMax float64) {
 				n.tB[m] += p
 				p *= dl
 			}
+		}
+	}
+	n.vA = resize(n.vA, ma)
+	n.vB = resize(n.vB, mb)
+	for m := range n.tA {
+		n.vA[m] = n.tA[m] / float64(m+1)
+	}
+	for m := range n.tB {
+		n.vB[m] = n.tB[m] / float64(m+1)
+		if m%2 == 1 {
+			n.vB[m] = -n.vB[m]
 		}
 	}
 	n.uB, n.gA, n.dB, n.rA, n.rB = uB, gA, dB, ra, rb
@@ -405,7 +436,7 @@ func (e *ipEval) condValue(n *ipNode, z float64, exact bool) float64 {
 	}
 	var pv float64
 	if !exact {
-		pv, _, _ = pendingSeries(n, q)
+		pv = pendingValue(n, q)
 	} else {
 		pv, _, _ = e.pendingExact(q)
 	}
@@ -434,9 +465,10 @@ func logSigmoid(z float64) float64 {
 func (e *ipEval) evalNode(n *ipNode, z0 float64) {
 	e.evals++
 	n.delayLL, n.gMax = e.delayAt(n.u[0], n.u[1])
-	// Moments for q up to e times the starting odds; more after the
-	// mode is known if its interval needs them.
-	e.setMoments(n, sigmoid(z0+1))
+	// Moments for q up to e^0.7 times the starting odds (a neighbouring
+	// node's mode); the exact sum covers any q beyond while the mode is
+	// sought, and the final grid adds terms where it needs them.
+	e.setMoments(n, sigmoid(z0+0.7))
 	n.ok = false
 	if math.IsNaN(n.delayLL) || math.IsInf(n.delayLL, 0) {
 		return

@@ -111,7 +111,8 @@ type ipNode struct {
 	uB, gA, dB float64
 	rA, rB     float64
 	z, sz      float64 // conditional mode of z and Laplace standard deviation
-	logM       float64 // Laplace log marginal of u (without its prior)
+	lp         float64 // log prior density of u
+	logM       float64 // Laplace log marginal of u, times its prior density
 	vol        float64 // volume of the cell the node stands for
 	ok         bool
 }
@@ -131,6 +132,10 @@ type ipEval struct {
 	// kq bounds f(z | u) - D(u) from above: the maximum over q of
 	// (C+a) log q + (U+b) log(1-q).
 	kq float64
+	// prior is the prior and weibull says whether nodes carry the shape
+	// prior (the Weibull family) or not (the exponential).
+	prior   Prior
+	weibull bool
 	// unitRow holds the coarse row of shape 1 computed by the Weibull
 	// family without a pruning floor, keyed by the scale range's lower
 	// end, for the exponential family to reuse.
@@ -140,7 +145,7 @@ type ipEval struct {
 func newIPEval(d *ipData, pr Prior) *ipEval {
 	a, b := d.conv+pr.QAlpha, d.matUnconv+pr.QBeta
 	return &ipEval{
-		d: d, a: a, b: b,
+		d: d, a: a, b: b, prior: pr,
 		kq:      a*math.Log(a/(a+b)) + b*math.Log(b/(a+b)),
 		g:       make([]float64, len(d.u)),
 		dl:      make([]float64, len(d.u)),
@@ -478,8 +483,19 @@ func (e *ipEval) evalNode(n *ipNode, z0 float64) {
 		return
 	}
 	n.z, n.sz = z, 1/math.Sqrt(-f2)
-	n.logM = n.delayLL + f + 0.5*math.Log(2*math.Pi) + math.Log(n.sz)
+	n.lp = e.logPrior(n.u)
+	n.logM = n.delayLL + n.lp + f + 0.5*math.Log(2*math.Pi) + math.Log(n.sz)
 	n.ok = !math.IsNaN(n.logM) && !math.IsInf(n.logM, 0)
+}
+
+// logPrior returns the log prior density of u for the family being
+// integrated.
+func (e *ipEval) logPrior(u [2]float64) float64 {
+	lp := e.prior.logScaleDensity(u[1], e.d.logW)
+	if e.weibull {
+		lp += e.prior.logShapeDensity(u[0])
+	}
+	return lp
 }
 
 // condMode maximises f(z | u) by safeguarded Newton steps (f is concave
@@ -619,7 +635,7 @@ func integratePosterior(d *FitData, families []DelayFamily, pr Prior) (*Integrat
 	top := math.Inf(-1)
 	for _, f := range fams {
 		for _, n := range f.nodes {
-			top = math.Max(top, n.logM+math.Log(n.vol)+f.logPrior)
+			top = math.Max(top, f.weight(&n))
 		}
 	}
 	if math.IsInf(top, -1) {
@@ -628,7 +644,7 @@ func integratePosterior(d *FitData, families []DelayFamily, pr Prior) (*Integrat
 	zlo, zhi := math.Inf(1), math.Inf(-1)
 	for _, f := range fams {
 		for _, n := range f.nodes {
-			if n.logM+math.Log(n.vol)+f.logPrior < top-ipKeep {
+			if f.weight(&n) < top-ipKeep {
 				continue
 			}
 			zlo = math.Min(zlo, n.z-ipZSpan*n.sz)
@@ -649,11 +665,10 @@ func integratePosterior(d *FitData, families []DelayFamily, pr Prior) (*Integrat
 		acc := make([]float64, len(zs))
 		for ni := range f.nodes {
 			n := &f.nodes[ni]
-			lw := math.Log(n.vol) + f.logPrior
-			if n.logM+lw < cut {
+			if f.weight(n) < cut {
 				continue
 			}
-			base := n.delayLL + lw - top
+			base := n.delayLL + n.lp + math.Log(n.vol) - top
 			first := max(0, int(math.Floor((n.z-ipZSpan*n.sz-zlo)/dz)))
 			last := min(len(zs)-1, int(math.Ceil((n.z+ipZSpan*n.sz-zlo)/dz)))
 			if hi := sigmoid(n.z + ipZSpan*n.sz); !n.seriesOK(hi) {
@@ -721,26 +736,32 @@ func integratePosterior(d *FitData, families []DelayFamily, pr Prior) (*Integrat
 // may together hold and still be left out of the final grid.
 const ipMassTail = 1e-6
 
-// massCut returns the log mass (relative to the scale of top) below which
-// nodes are left out: the smallest nodes holding together at most
-// ipMassTail of the total.
+// weight returns a node's log mass: its Laplace log marginal (which
+// includes the prior density of u) times its cell volume.
+func (f *ipFamily) weight(n *ipNode) float64 {
+	return n.logM + math.Log(n.vol)
+}
+
+// massCut returns the log mass (as weight computes it) below which nodes
+// are left out: the smallest nodes holding together at most ipMassTail of
+// the total.
 func massCut(fams []*ipFamily, top float64) float64 {
 	var ws []float64
 	for _, f := range fams {
-		for _, n := range f.nodes {
-			ws = append(ws, n.logM+math.Log(n.vol)+f.logPrior-top)
+		for i := range f.nodes {
+			ws = append(ws, f.weight(&f.nodes[i]))
 		}
 	}
 	slices.Sort(ws)
 	total := 0.0
 	for _, w := range ws {
-		total += math.Exp(w)
+		total += math.Exp(w - top)
 	}
 	acc := 0.0
 	for _, w := range ws {
-		acc += math.Exp(w)
+		acc += math.Exp(w - top)
 		if acc > ipMassTail*total {
-			return w + top
+			return w
 		}
 	}
 	return math.Inf(-1)

@@ -32,19 +32,22 @@ func denseQuantiles(t *testing.T, d *FitData, family DelayFamily, box ipBox, nk,
 	logs := make([]float64, 0, nk*ns*nq)
 	top := math.Inf(-1)
 	for a := range nk {
-		k := 1.0
+		k, lpk := 1.0, 0.0
 		if family == FamilyWeibull {
-			k = math.Exp(box.lo[0] + (float64(a)+0.5)/float64(nk)*(box.hi[0]-box.lo[0]))
+			lk := box.lo[0] + (float64(a)+0.5)/float64(nk)*(box.hi[0]-box.lo[0])
+			k, lpk = math.Exp(lk), pr.logShapeDensity(lk)
 		}
 		for b := range ns {
-			s := math.Exp(box.lo[1] + (float64(b)+0.5)/float64(ns)*(box.hi[1]-box.lo[1]))
+			ls := box.lo[1] + (float64(b)+0.5)/float64(ns)*(box.hi[1]-box.lo[1])
+			s := math.Exp(ls)
+			lp := lpk + pr.logScaleDensity(ls, math.Log(p.w))
 			dist := r.dist(params{k: k, s: s})
 			// loglik at a reference q fills r.logS (log(1-G) per pending
 			// bin); the delay term is what remains after the q terms.
 			const q0 = 0.5
 			delay := r.loglik(q0, &dist) - qTerms(p, r.logS, q0)
 			for _, q := range qs {
-				v := delay + qTerms(p, r.logS, q) + (pr.QAlpha-1)*math.Log(q) + (pr.QBeta-1)*math.Log1p(-q)
+				v := lp + delay + qTerms(p, r.logS, q) + (pr.QAlpha-1)*math.Log(q) + (pr.QBeta-1)*math.Log1p(-q)
 				logs = append(logs, v)
 				top = math.Max(top, v)
 			}

@@ -63,7 +63,6 @@ type ipFamily struct {
 	nodes  []ipNode
 	// modeNode is the node with the largest Laplace log marginal.
 	modeNode ipNode
-	logPrior float64 // log density of the uniform prior on u
 	evals    int
 }
 
@@ -100,23 +99,24 @@ func (e *ipEval) integrateFamily(family DelayFamily, pr Prior) *ipFamily {
 	start := e.evals
 	box := priorBox(pr, e.d.w, family)
 	fam := &ipFamily{family: family}
-	width := box.hi[1] - box.lo[1]
+	e.weibull = family == FamilyWeibull
 	var rows []ipRow
 	if family == FamilyWeibull {
-		width *= box.hi[0] - box.lo[0]
 		rows = e.shapeRows(box)
 	} else {
 		// Shape 1 is the middle coarse row of the Weibull family (when the
-		// shape range is symmetric about 1 on the log scale): reuse it.
+		// shape range is symmetric about 1 on the log scale): reuse it,
+		// without the shape prior's density.
 		c, ok := e.unitRow[box.lo[1]]
-		if !ok {
+		if ok {
+			c = dropShapePrior(c, e.prior.logShapeDensity(c.lk))
+		} else {
 			c = e.coarseRow(0, box, math.Inf(-1))
 		}
 		r := e.fineRow(c, box)
 		r.width = 1
 		rows = []ipRow{r}
 	}
-	fam.logPrior = -math.Log(width)
 	for _, r := range rows {
 		for _, n := range r.nodes {
 			n.vol *= r.width
@@ -126,6 +126,20 @@ func (e *ipEval) integrateFamily(family DelayFamily, pr Prior) *ipFamily {
 	fam.modeNode = bestNode(fam.nodes)
 	fam.evals = e.evals - start
 	return fam
+}
+
+// dropShapePrior returns a copy of row r whose nodes leave out the shape
+// prior's log density ls.
+func dropShapePrior(r ipRow, ls float64) ipRow {
+	r.nodes = slices.Clone(r.nodes)
+	for i := range r.nodes {
+		r.nodes[i].lp -= ls
+		r.nodes[i].logM -= ls
+	}
+	r.mode.lp -= ls
+	r.mode.logM -= ls
+	r.logMass -= ls
+	return r
 }
 
 // shapeRows integrates the outer axis (log shape): coarse rows first, then,
@@ -326,7 +340,7 @@ func (e *ipEval) coarseRow(lk float64, box ipBox, floor float64) ipRow {
 	cands := make([]cand, n)
 	for i := range cands {
 		ls := box.lo[1] + (float64(i)+0.5)*h
-		cands[i] = cand{i, e.delayTerm(lk, ls) + e.kq + ipBoundSlack}
+		cands[i] = cand{i, e.delayTerm(lk, ls) + e.logPrior([2]float64{lk, ls}) + e.kq + ipBoundSlack}
 	}
 	sort.Slice(cands, func(a, b int) bool { return cands[a].ub > cands[b].ub })
 	cells := make([]ipNode, n)

@@ -103,20 +103,16 @@ func BenchmarkRefitExponential(b *testing.B) {
 	}
 }
 
-// BenchmarkRefitPosterior measures the likelihood posterior of a fitted
-// arm for each family.
+// BenchmarkRefitPosterior measures the posterior of q of one arm
+// (ArmPosterior: fit and posterior together) for each delay family and
+// for auto, on the 1e6-click state.
 func BenchmarkRefitPosterior(b *testing.B) {
 	s := benchState(b, 1e6)
 	d := s.FitData()
-	for _, fam := range []DelayFamily{FamilyExponential, FamilyWeibull, FamilyHistogram} {
+	for _, fam := range []DelayFamily{FamilyAuto, FamilyExponential, FamilyWeibull, FamilyHistogram} {
 		b.Run(fam.String(), func(b *testing.B) {
-			f, err := FitModel(&d, FitOptions{Family: fam})
-			if err != nil {
-				b.Fatal(err)
-			}
-			b.ResetTimer()
 			for range b.N {
-				if _, err := NewLikelihoodPosterior(&d, f); err != nil {
+				if _, err := ArmPosterior(&d, fam, Prior{}, nil); err != nil {
 					b.Fatal(err)
 				}
 			}

@@ -17,7 +17,8 @@ import (
 // Options controls Run.
 type Options struct {
 	// Policies are the allocation policies to simulate, by name (see
-	// estimator.PolicyNames). Default: all of them.
+	// PolicyNames: the service's policies and PolicyDelayOracle). Default:
+	// all of them.
 	Policies []string
 	// Runs overrides the scenario's number of runs. Default: 0 (the
 	// scenario's).
@@ -135,13 +136,16 @@ func Run(ctx context.Context, sc Scenario, o Options) (*Result, error) {
 	}
 	names := o.Policies
 	if len(names) == 0 {
-		names = estimator.PolicyNames()
+		names = PolicyNames()
 	}
 	policies := make([]estimator.Policy, len(names))
 	for i, n := range names {
+		if n == PolicyDelayOracle {
+			continue // one per run: it holds the run's posteriors
+		}
 		p, err := estimator.ParsePolicy(n)
 		if err != nil {
-			return nil, fmt.Errorf("simulate: %w", err)
+			return nil, fmt.Errorf("simulate: %w", CheckPolicy(n))
 		}
 		policies[i] = p
 	}
@@ -187,7 +191,12 @@ func Run(ctx context.Context, sc Scenario, o Options) (*Result, error) {
 				p, r := j/runs, j%runs
 				a := alloc
 				a.Policy = policies[p]
-				outs[j], errs[j] = c.simulate(ctx, a, family, RunSeed(seed, r), r == 0)
+				var oracle *delayOracle
+				if a.Policy == nil {
+					oracle = newDelayOracle(c)
+					a.Policy = oracle
+				}
+				outs[j], errs[j] = c.simulate(ctx, a, oracle, family, RunSeed(seed, r), r == 0)
 				if o.Progress != nil {
 					mu.Lock()
 					done++
@@ -292,7 +301,10 @@ func (h *convHeap) Pop() any {
 // current weights, conversions are revealed once their time has passed,
 // and at every update the arms' states are advanced and the experiment is
 // evaluated exactly as the service does.
-func (c *compiled) simulate(ctx context.Context, alloc estimator.AllocationOptions, family estimator.DelayFamily, seed uint64, trace bool) (runOutput, error) {
+//
+// oracle, when not nil, is alloc.Policy: its posteriors are computed from
+// the arms' states before each evaluation.
+func (c *compiled) simulate(ctx context.Context, alloc estimator.AllocationOptions, oracle *delayOracle, family estimator.DelayFamily, seed uint64, trace bool) (runOutput, error) {
 	k := c.k
 	layout := estimator.Layout{Window: c.sc.Window.D()}
 	states := make([]*estimator.ArmState, k)
@@ -346,6 +358,11 @@ func (c *compiled) simulate(ctx context.Context, alloc estimator.AllocationOptio
 			states[cv.arm].AddConversion(Start+cv.click, Start+cv.at)
 			if trace {
 				delays[cv.arm] = append(delays[cv.arm], float64(cv.at-cv.click)/1000)
+			}
+		}
+		if oracle != nil {
+			if err := oracle.update(states); err != nil {
+				return runOutput{}, fmt.Errorf("update at %.1fh: %w", float64(end)/3.6e6, err)
 			}
 		}
 		arms := make([]estimator.ArmData, k)

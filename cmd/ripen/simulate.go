@@ -155,7 +155,7 @@ func runSimulate(cmd *cobra.Command, f simulateFlags) error {
 		}
 		total += runs * len(policies)
 	}
-	bar := newProgressBar(errOut)
+	bar := newProgressBar(errOut, "simulating")
 	start := time.Now()
 	var results []*sim.Result
 	for _, sc := range scenarios {
@@ -299,13 +299,14 @@ func simulateReport(res *sim.Result, out simulateOutput) (report.Page, error) {
 
 // progressBar draws a one-line progress bar on a terminal.
 type progressBar struct {
-	w    io.Writer
-	last int
+	w     io.Writer
+	label string
+	last  int
 }
 
-// newProgressBar returns a bar drawing on w, or nil unless w is a
-// terminal (so tests and pipes never see one).
-func newProgressBar(w io.Writer) *progressBar {
+// newProgressBar returns a bar labelled label drawing on w, or nil unless
+// w is a terminal (so tests and pipes never see one).
+func newProgressBar(w io.Writer, label string) *progressBar {
 	f, ok := w.(*os.File)
 	if !ok {
 		return nil
@@ -314,7 +315,7 @@ func newProgressBar(w io.Writer) *progressBar {
 	if err != nil || st.Mode()&os.ModeCharDevice == 0 {
 		return nil
 	}
-	return &progressBar{w: w, last: -1}
+	return &progressBar{w: w, label: label, last: -1}
 }
 
 func (b *progressBar) update(done, total int) {
@@ -324,7 +325,7 @@ func (b *progressBar) update(done, total int) {
 		return
 	}
 	b.last = n
-	fmt.Fprintf(b.w, "\rsimulating [%s%s] %d/%d", strings.Repeat("=", n), strings.Repeat(" ", width-n), done, total)
+	fmt.Fprintf(b.w, "\r%s [%s%s] %d/%d", b.label, strings.Repeat("=", n), strings.Repeat(" ", width-n), done, total)
 }
 
 func (b *progressBar) finish() { fmt.Fprint(b.w, "\r\033[K") }

@@ -153,7 +153,9 @@ func bisect(lo, hi float64, pred func(float64) bool) float64 {
 //
 // with C the observed conversions, u_j the unconverted clicks of pending
 // bin j of d at age a_j and U the matured unconverted clicks. With G = 1
-// everywhere it is Beta(C+1/2, N-C+1/2).
+// everywhere it is Beta(C+1/2, N-C+1/2). Like the estimator it takes the
+// rate to be constant over the arm's clicks, so after a change point it is
+// the posterior of a misspecified model, not the truth.
 //
 // The grid adapts to the data: the mode of logit(q) is found by bisection
 // on the derivative (the density is unimodal), the grid's ends where the

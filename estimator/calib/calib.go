@@ -362,13 +362,17 @@ func Run(ctx context.Context, o Options) (*Result, error) {
 	if err != nil {
 		return nil, err
 	}
-	pooled := make(map[[2]float64][]sample)
-	var pooledOrder [][2]float64
+	type poolKey struct {
+		fit      estimator.DelayFamily
+		maturity float64
+	}
+	pooled := make(map[poolKey][]sample)
+	var pooledOrder []poolKey
 	for i, id := range covIDs {
 		c := summariseCoverage(samples[i])
 		c.Fit, c.Truth, c.Maturity, c.ClicksPerHour = id.fit, id.truth, id.maturity, id.traffic
 		res.Cells = append(res.Cells, c)
-		k := [2]float64{float64(id.fit), id.maturity}
+		k := poolKey{id.fit, id.maturity}
 		if _, ok := pooled[k]; !ok {
 			pooledOrder = append(pooledOrder, k)
 		}
@@ -376,7 +380,7 @@ func Run(ctx context.Context, o Options) (*Result, error) {
 	}
 	for _, k := range pooledOrder {
 		c := summariseCoverage(pooled[k])
-		c.Fit, c.Maturity = estimator.DelayFamily(k[0]), k[1]
+		c.Fit, c.Maturity = k.fit, k.maturity
 		res.Pooled = append(res.Pooled, c)
 	}
 	for i, p := range sbc {

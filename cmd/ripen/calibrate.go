@@ -4,6 +4,7 @@ import (
 	"encoding/json"
 	"fmt"
 	"io"
+	"strconv"
 	"strings"
 	"text/tabwriter"
 	"time"
@@ -17,14 +18,14 @@ import (
 // calibrateFlags are the options of `ripen calibrate`.
 type calibrateFlags struct {
 	window        string
-	maturities    []float64
+	maturities    []string
 	truths        []string
-	clicks        []float64
+	clicks        []string
 	fits          []string
 	replicates    int
 	qMin, qMax    float64
 	step          string
-	sbcClicks     []float64
+	sbcClicks     []string
 	sbcReplicates int
 	sbcDraws      int
 	skipCoverage  bool
@@ -67,15 +68,15 @@ Everything is seeded; the output does not depend on --workers.`,
 	}
 	fl := cmd.Flags()
 	fl.StringVar(&f.window, "window", "7d", "attribution window, e.g. 7d, 36h")
-	fl.Float64SliceVar(&f.maturities, "maturities", d.Maturities, "as-of times in windows")
+	fl.StringSliceVar(&f.maturities, "maturities", floatNames(d.Maturities), "as-of times in windows")
 	fl.StringSliceVar(&f.truths, "truths", truthNames(d.Truths), "delay families of the truth: exponential, weibull, lognormal, mixture")
-	fl.Float64SliceVar(&f.clicks, "clicks-per-hour", d.ClicksPerHour, "traffic to the arm, clicks per hour")
+	fl.StringSliceVar(&f.clicks, "clicks-per-hour", floatNames(d.ClicksPerHour), "traffic to the arm, clicks per hour")
 	fl.StringSliceVar(&f.fits, "fits", familyNames(d.Fits), "fitted delay families: auto, exponential, weibull, histogram")
 	fl.IntVar(&f.replicates, "replicates", d.Replicates, "replicates per coverage cell")
 	fl.Float64Var(&f.qMin, "q-min", d.QMin, "smallest true eventual rate")
 	fl.Float64Var(&f.qMax, "q-max", d.QMax, "largest true eventual rate")
 	fl.StringVar(&f.step, "step", d.Step.String(), "interval between batches of clicks")
-	fl.Float64SliceVar(&f.sbcClicks, "sbc-clicks-per-hour", d.SBCClicksPerHour, "traffic of simulation-based calibration")
+	fl.StringSliceVar(&f.sbcClicks, "sbc-clicks-per-hour", floatNames(d.SBCClicksPerHour), "traffic of simulation-based calibration")
 	fl.IntVar(&f.sbcReplicates, "sbc-replicates", d.SBCReplicates, "replicates per SBC cell (at least 100)")
 	fl.IntVar(&f.sbcDraws, "sbc-draws", d.SBCDraws, "posterior quantiles the truth is ranked among (L; L+1 a multiple of 20)")
 	fl.BoolVar(&f.skipCoverage, "skip-coverage", false, "run simulation-based calibration only")
@@ -84,6 +85,28 @@ Everything is seeded; the output does not depend on --workers.`,
 	fl.IntVar(&f.workers, "workers", 0, "goroutines (0: all cores); results do not depend on it")
 	fl.StringVar(&f.format, "format", "table", "output format: table or json")
 	return cmd
+}
+
+// floatNames formats numbers for flag defaults (0.25, not 0.250000).
+func floatNames(xs []float64) []string {
+	out := make([]string, len(xs))
+	for i, x := range xs {
+		out[i] = strconv.FormatFloat(x, 'g', -1, 64)
+	}
+	return out
+}
+
+// parseFloats parses the values of a list flag.
+func parseFloats(flag string, vals []string) ([]float64, error) {
+	out := make([]float64, len(vals))
+	for i, v := range vals {
+		x, err := strconv.ParseFloat(strings.TrimSpace(v), 64)
+		if err != nil {
+			return nil, fmt.Errorf("--%s: %q is not a number", flag, v)
+		}
+		out[i] = x
+	}
+	return out, nil
 }
 
 func truthNames(ts []calib.TruthFamily) []string {
@@ -105,12 +128,21 @@ func familyNames(fs []estimator.DelayFamily) []string {
 // calibrateOptions turns the flags into options.
 func calibrateOptions(f calibrateFlags) (calib.Options, error) {
 	o := calib.Options{
-		Maturities: f.maturities, ClicksPerHour: f.clicks, Replicates: f.replicates, QMin: f.qMin, QMax: f.qMax,
-		SBCClicksPerHour: f.sbcClicks, SBCReplicates: f.sbcReplicates, SBCDraws: f.sbcDraws,
+		Replicates: f.replicates, QMin: f.qMin, QMax: f.qMax, SBCReplicates: f.sbcReplicates, SBCDraws: f.sbcDraws,
 		SkipCoverage: f.skipCoverage, SkipSBC: f.skipSBC, Seed: f.seed, Workers: f.workers,
 	}
 	if f.skipCoverage && f.skipSBC {
 		return o, fmt.Errorf("--skip-coverage and --skip-sbc: nothing left to run")
+	}
+	var err error
+	if o.Maturities, err = parseFloats("maturities", f.maturities); err != nil {
+		return o, err
+	}
+	if o.ClicksPerHour, err = parseFloats("clicks-per-hour", f.clicks); err != nil {
+		return o, err
+	}
+	if o.SBCClicksPerHour, err = parseFloats("sbc-clicks-per-hour", f.sbcClicks); err != nil {
+		return o, err
 	}
 	w, err := estimator.ParseDuration(f.window)
 	if err != nil {

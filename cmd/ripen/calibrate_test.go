@@ -72,6 +72,7 @@ func TestCalibrateErrors(t *testing.T) {
 		{[]string{"--skip-sbc", "--skip-coverage"}, "nothing left"},
 		{[]string{"--sbc-replicates", "10"}, "SBC replicates 10"},
 		{[]string{"--format", "xml"}, "--format"},
+		{[]string{"--maturities", "0.5,soon"}, `--maturities: "soon" is not a number`},
 	} {
 		t.Run(tc.want, func(t *testing.T) {
 			_, _, err := runRipen(t, append([]string{"calibrate"}, tc.args...)...)

@@ -7,7 +7,6 @@ import (
 	"fmt"
 	"io"
 	"maps"
-	"math"
 	"net"
 	"slices"
 	"strconv"
@@ -31,9 +30,11 @@ type Config struct {
 	Kafka KafkaConfig `yaml:"kafka"`
 	// Redis is how to reach the state store.
 	Redis RedisConfig `yaml:"redis"`
-	// HTTP is the listen address of /metrics, /livez, /readyz and /v1.
-	// Default: 127.0.0.1:9464.
+	// HTTP is the listen address of /metrics, /livez, /readyz, /v1 and
+	// the web console. Default: 127.0.0.1:9464.
 	HTTP string `yaml:"http"`
+	// HTTPAuth protects the web console and /v1.
+	HTTPAuth HTTPAuthConfig `yaml:"http_auth"`
 	// Log is the log encoding: "json" or "console". Default: json.
 	Log string `yaml:"log"`
 	// Pipeline tunes batching, the watermark and refits.
@@ -197,9 +198,11 @@ type ExperimentConfig struct {
 	// many. Defaults: estimator's (100 and 5).
 	BurnInClicks      *int `yaml:"burn_in_clicks"`
 	BurnInConversions *int `yaml:"burn_in_conversions"`
-	// SettleProbability (the leader's P(best), in (0, 1]) and SettleLoss
-	// (its expected loss relative to its mean, >= 0) configure the settle
-	// rule. Defaults: estimator's (0.95 and 0.01).
+	// SettleProbability and SettleLoss configure the settle rule (see
+	// estimator.Settle): it names an arm worse than the best by more than
+	// SettleLoss (relative, in [0, 1)) with probability at most
+	// 1 - SettleProbability (in (0, 1)), however often it is checked.
+	// Defaults: estimator's (0.95 and 0.01).
 	SettleProbability *float64 `yaml:"settle_probability"`
 	SettleLoss        *float64 `yaml:"settle_loss"`
 	// Paused arms receive no traffic. A nil list inherits; an empty list
@@ -241,6 +244,32 @@ func (e ExperimentConfig) MarshalYAML() (any, error) {
 		out.Paused = &e.Paused
 	}
 	return out, nil
+}
+
+// HTTPAuthConfig is the credential that protects the web console and /v1
+// (never /metrics, /livez or /readyz, which scrapers and probes read).
+// With none set they are open, which Validate accepts only on a loopback
+// address unless AllowUnauthenticated says so.
+type HTTPAuthConfig struct {
+	// BearerToken is accepted as "Authorization: Bearer TOKEN", and, for
+	// browsers, as the password of HTTP basic auth with any user name.
+	// Prefer the RIPEN_HTTP_AUTH_BEARER_TOKEN environment variable.
+	// Default: none.
+	BearerToken string `yaml:"bearer_token"`
+	// Username and Password are an HTTP basic-auth credential (both or
+	// neither). Prefer RIPEN_HTTP_AUTH_PASSWORD for the password.
+	// Default: none.
+	Username string `yaml:"username"`
+	Password string `yaml:"password"`
+	// AllowUnauthenticated serves the console and /v1 without a
+	// credential on an address beyond loopback (behind an authenticating
+	// proxy, say). Default: false.
+	AllowUnauthenticated bool `yaml:"allow_unauthenticated"`
+}
+
+// Enabled reports whether a credential is configured.
+func (a HTTPAuthConfig) Enabled() bool {
+	return a.BearerToken != "" || a.Username != "" || a.Password != ""
 }
 
 // LimitsConfig caps cardinality; excess events are dead-lettered with
@@ -357,8 +386,8 @@ func (e ExperimentConfig) WithDefaults() ExperimentConfig {
 	setDefaultPtr(&e.MaxChange, a.MaxChange)
 	setDefaultPtr(&e.BurnInClicks, int(a.BurnInClicks))
 	setDefaultPtr(&e.BurnInConversions, int(a.BurnInConversions))
-	setDefaultPtr(&e.SettleProbability, a.PBestThreshold)
-	setDefaultPtr(&e.SettleLoss, a.LossThreshold)
+	setDefaultPtr(&e.SettleProbability, a.SettleConfidence)
+	setDefaultPtr(&e.SettleLoss, a.SettleTolerance)
 	return e
 }
 
@@ -498,6 +527,12 @@ func (c Config) Validate() error {
 
 	if err := checkHostPort(c.HTTP); err != nil {
 		v.add("http", "%v", err)
+	} else if a := c.HTTPAuth; !a.Enabled() && !a.AllowUnauthenticated && !IsLoopback(c.HTTP) {
+		v.add("http_auth", "%s listens beyond loopback and the console and /v1 have no credential: set http_auth.bearer_token "+
+			"(RIPEN_HTTP_AUTH_BEARER_TOKEN) or username and password, or allow_unauthenticated: true", c.HTTP)
+	}
+	if a := c.HTTPAuth; (a.Username == "") != (a.Password == "") {
+		v.add("http_auth", "username and password must be given together")
 	}
 	if c.Log != LogJSON && c.Log != LogConsole {
 		v.add("log", "unknown encoding %q (valid: %s, %s)", c.Log, LogJSON, LogConsole)
@@ -605,11 +640,11 @@ func (e ExperimentConfig) problems(maxArms int) []error {
 	if *e.BurnInConversions < 0 {
 		v.add("burn_in_conversions", "%d must not be negative", *e.BurnInConversions)
 	}
-	if sp := *e.SettleProbability; !(sp > 0 && sp <= 1) {
-		v.add("settle_probability", "%v not in (0, 1]", sp)
+	if sp := *e.SettleProbability; !(sp > 0 && sp < 1) {
+		v.add("settle_probability", "%v not in (0, 1)", sp)
 	}
-	if sl := *e.SettleLoss; !(sl >= 0) || math.IsInf(sl, 0) {
-		v.add("settle_loss", "%v must be finite and >= 0", sl)
+	if sl := *e.SettleLoss; !(sl >= 0 && sl < 1) {
+		v.add("settle_loss", "%v not in [0, 1)", sl)
 	}
 	if maxArms > 0 && len(e.Paused) > maxArms {
 		v.add("paused", "%d arms exceed limits.max_arms %d", len(e.Paused), maxArms)
@@ -645,8 +680,8 @@ func (e ExperimentConfig) AllocationOptions() (estimator.AllocationOptions, erro
 	o.MaxChange = *e.MaxChange
 	o.BurnInClicks = float64(*e.BurnInClicks)
 	o.BurnInConversions = float64(*e.BurnInConversions)
-	o.PBestThreshold = *e.SettleProbability
-	o.LossThreshold = *e.SettleLoss
+	o.SettleConfidence = *e.SettleProbability
+	o.SettleTolerance = *e.SettleLoss
 	return o, nil
 }
 

@@ -352,7 +352,7 @@ var flagSpecs = []flagSpec{
 	{"control-topic", "control topic `name`", "kafka.control_topic"},
 	{"redis", "Redis `URL` (redis:// or rediss://)", "redis.url"},
 	{"prefix", "Redis key `prefix`", "redis.prefix"},
-	{"http", "HTTP listen `address` for /metrics, /livez, /readyz and /v1", "http"},
+	{"http", "HTTP listen `address` for /metrics, /livez, /readyz, /v1 and the web console", "http"},
 	{"log", "log `encoding`: json or console", "log"},
 }
 
@@ -423,11 +423,14 @@ func (o *FlagOverrides) Apply(c *Config) error {
 // redacted replaces secrets in logged or printed copies of a config.
 const redacted = "REDACTED"
 
-// Redacted returns a copy of c safe to log or print: the SASL password and
-// the password in the Redis URL are replaced by "REDACTED".
+// Redacted returns a copy of c safe to log or print: the SASL password,
+// the password in the Redis URL and the HTTP credentials are replaced by
+// "REDACTED".
 func (c Config) Redacted() Config {
-	if c.Kafka.SASL.Password != "" {
-		c.Kafka.SASL.Password = redacted
+	for _, p := range []*string{&c.Kafka.SASL.Password, &c.HTTPAuth.BearerToken, &c.HTTPAuth.Password} {
+		if *p != "" {
+			*p = redacted
+		}
 	}
 	c.Redis.URL = redactURL(c.Redis.URL)
 	return c

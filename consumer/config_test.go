@@ -58,7 +58,7 @@ func TestConfigGolden(t *testing.T) {
 		name string
 		env  map[string]string
 	}{
-		{"full", map[string]string{"RIPEN_KAFKA_SASL_PASSWORD": "kettle-42"}},
+		{"full", map[string]string{"RIPEN_KAFKA_SASL_PASSWORD": "kettle-42", "RIPEN_HTTP_AUTH_PASSWORD": "teapot-7"}},
 		{"minimal", nil},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
@@ -83,8 +83,8 @@ func TestConfigGolden(t *testing.T) {
 			if string(got) != string(want) {
 				t.Errorf("effective config differs from %s (run with -update if intended)\n--- got\n%s", golden, got)
 			}
-			if strings.Contains(string(got), "kettle-42") {
-				t.Errorf("golden output leaks the SASL password")
+			if strings.Contains(string(got), "kettle-42") || strings.Contains(string(got), "teapot-7") {
+				t.Errorf("golden output leaks a password")
 			}
 			// The effective form is a fixed point: loading it again (with
 			// the real password) gives the same configuration.
@@ -106,7 +106,7 @@ func TestConfigGolden(t *testing.T) {
 // TestConfigFullValues spot-checks the example config against its text, so
 // a wrong golden file cannot be accepted by -update unnoticed.
 func TestConfigFullValues(t *testing.T) {
-	c, err := LoadConfig(filepath.Join(configDir, "full.yaml"), mapEnv(map[string]string{"RIPEN_KAFKA_SASL_PASSWORD": "kettle-42"}), nil)
+	c, err := LoadConfig(filepath.Join(configDir, "full.yaml"), mapEnv(map[string]string{"RIPEN_KAFKA_SASL_PASSWORD": "kettle-42", "RIPEN_HTTP_AUTH_PASSWORD": "teapot-7"}), nil)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -116,6 +116,8 @@ func TestConfigFullValues(t *testing.T) {
 	}{
 		{"brokers", c.Kafka.Brokers, []string{"kafka-0.marlow.internal:9093", "kafka-1.marlow.internal:9093"}},
 		{"password from env", c.Kafka.SASL.Password, "kettle-42"},
+		{"http password from env", c.HTTPAuth.Password, "teapot-7"},
+		{"http user", c.HTTPAuth.Username, "ops"},
 		{"flush interval", c.Pipeline.FlushInterval, 250 * time.Millisecond},
 		{"orphan ttl", c.Pipeline.OrphanTTL, 90 * time.Minute},
 		{"default window 7d", c.Defaults.Window, 7 * 24 * time.Hour},
@@ -156,8 +158,8 @@ func TestConfigPrecedence(t *testing.T) {
 		{"file via --config", "", nil, []string{"--config", file}, "from-file", []string{"file:9092"}, "127.0.0.1:7001"},
 		{"env over file", file, map[string]string{"RIPEN_KAFKA_GROUP": "from-env", "RIPEN_KAFKA_BROKERS": "a:1, b:2,,"}, nil, "from-env", []string{"a:1", "b:2"}, "127.0.0.1:7001"},
 		{"empty env is unset", file, map[string]string{"RIPEN_KAFKA_GROUP": ""}, nil, "from-file", []string{"file:9092"}, "127.0.0.1:7001"},
-		{"flag over env", file, map[string]string{"RIPEN_KAFKA_GROUP": "from-env", "RIPEN_HTTP": ":7002"}, []string{"--group=from-flag", "--brokers", "c:3,d:4"}, "from-flag", []string{"c:3", "d:4"}, ":7002"},
-		{"unset flags do not override", file, map[string]string{"RIPEN_KAFKA_GROUP": "from-env"}, []string{"--http", ":7003"}, "from-env", []string{"file:9092"}, ":7003"},
+		{"flag over env", file, map[string]string{"RIPEN_KAFKA_GROUP": "from-env", "RIPEN_HTTP": "127.0.0.1:7002"}, []string{"--group=from-flag", "--brokers", "c:3,d:4"}, "from-flag", []string{"c:3", "d:4"}, "127.0.0.1:7002"},
+		{"unset flags do not override", file, map[string]string{"RIPEN_KAFKA_GROUP": "from-env"}, []string{"--http", "127.0.0.1:7003"}, "from-env", []string{"file:9092"}, "127.0.0.1:7003"},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
 			c, err := LoadConfig(tc.path, mapEnv(tc.env), parseFlags(t, tc.args...))
@@ -332,7 +334,7 @@ func TestConfigValidate(t *testing.T) {
 		{"cap zero", func(c *Config) { c.Defaults.Cap = ptr(0.0); c.Defaults.Floor = ptr(0.0) }, "defaults.cap: must be positive"},
 		{"max change above 1", func(c *Config) { c.Defaults.MaxChange = ptr(1.5) }, "defaults.max_change: 1.5 not in [0, 1]"},
 		{"negative burn-in", func(c *Config) { c.Defaults.BurnInClicks = ptr(-1) }, "defaults.burn_in_clicks: -1 must not be negative"},
-		{"settle probability 0", func(c *Config) { c.Defaults.SettleProbability = ptr(0.0) }, "defaults.settle_probability: 0 not in (0, 1]"},
+		{"settle probability 0", func(c *Config) { c.Defaults.SettleProbability = ptr(0.0) }, "defaults.settle_probability: 0 not in (0, 1)"},
 		{"paused twice", func(c *Config) {
 			c.Experiments = map[string]ExperimentConfig{"tea-towels": {Paused: []string{"red", "red"}}}
 		}, `experiments["tea-towels"].paused[1]: arm "red" listed twice`},
@@ -551,7 +553,7 @@ func TestConfigAllocationOptions(t *testing.T) {
 		t.Errorf("estimator rejects the options: %v", err)
 	}
 	if o.Policy.Name() != estimator.PolicyTopTwo || o.Floor != 0.05 || o.Cap != 0.9 || o.MaxChange != 0.2 ||
-		o.BurnInClicks != 50 || o.BurnInConversions != 3 || o.PBestThreshold != 0.99 || o.LossThreshold != 0.005 {
+		o.BurnInClicks != 50 || o.BurnInConversions != 3 || o.SettleConfidence != 0.99 || o.SettleTolerance != 0.005 {
 		t.Errorf("options %+v", o)
 	}
 	if f, err := e.DelayFamily(); err != nil || f != estimator.FamilyWeibull {

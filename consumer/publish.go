@@ -28,6 +28,8 @@ type publication struct {
 	asOf    int64 // event time of the evaluation, Unix ms
 	seq     int64
 	body    []byte // the stored report JSON
+	status  estimator.AllocationStatus
+	settle  *estimator.SettleState // nil unless settled
 }
 
 // Allocation is the message published to the allocation topic (key: the
@@ -277,6 +279,7 @@ func (s *Service) refit(ctx context.Context, id string, tick int64) error {
 		in.Arms = append(in.Arms, estimator.ArmData{Arm: arm, State: st, Paused: slices.Contains(ec.Paused, arm)})
 	}
 	if havePrev {
+		in.PrevSettle = prev.settle
 		in.PrevWeights = make([]float64, len(in.Arms))
 		complete := true
 		for i, a := range in.Arms {
@@ -295,7 +298,9 @@ func (s *Service) refit(ctx context.Context, id string, tick int64) error {
 	if err != nil {
 		return fmt.Errorf("evaluate experiment %q: %w", id, err)
 	}
-	if havePrev && !moved(prev.weights, rep.Weights, cfg.Pipeline.PublishThreshold) && asOf-prev.asOf < cfg.Pipeline.PublishEvery.Milliseconds() {
+	// A change of status is always published, so the stored report carries
+	// the settle state the next refit continues from.
+	if havePrev && rep.Status == prev.status && !moved(prev.weights, rep.Weights, cfg.Pipeline.PublishThreshold) && asOf-prev.asOf < cfg.Pipeline.PublishEvery.Milliseconds() {
 		return nil
 	}
 	return s.publish(ctx, id, asOf, rep)
@@ -430,5 +435,9 @@ func (s *Service) loadPublication(ctx context.Context, id string) (publication, 
 	if err != nil {
 		return publication{}, false, nil
 	}
-	return publication{weights: rep.Weights, asOf: t.UnixMilli(), seq: seq, body: body}, true, nil
+	settle, err := rep.PrevSettle()
+	if err != nil {
+		s.log.Warn("stored allocation's settle state unreadable; settling afresh", zap.String("experiment", id), zap.Error(err))
+	}
+	return publication{weights: rep.Weights, asOf: t.UnixMilli(), seq: seq, body: body, status: rep.Status, settle: settle}, true, nil
 }

@@ -390,6 +390,18 @@ func (s *Service) Experiments(ctx context.Context) ([]string, error) {
 	return ids, nil
 }
 
+// Store returns the state store of the live prefix, which the service
+// reads and writes (it follows a replay's switch).
+func (s *Service) Store() *state.Store { return s.currentStore() }
+
+// Watermark returns the group's event-time watermark as last computed
+// (Unix ms), and false before the first.
+func (s *Service) Watermark() (int64, bool) {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	return s.watermark, s.watermark != noTime
+}
+
 // LatestAllocation returns the experiment's latest allocation message as
 // published (JSON with its seq), and false if none was published.
 func (s *Service) LatestAllocation(ctx context.Context, experiment string) ([]byte, bool, error) {

@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"math"
 	"math/rand/v2"
+	"slices"
 	"sort"
 	"strings"
 )
@@ -318,13 +319,13 @@ const (
 	StatusCollecting AllocationStatus = "collecting"
 	// StatusAdapting means the policy's weights are in use.
 	StatusAdapting AllocationStatus = "adapting"
-	// StatusSettled means the settle rule holds for the leader.
+	// StatusSettled means the settle rule has named an arm (see Settle).
 	StatusSettled AllocationStatus = "settled"
 )
 
-// AllocationOptions are the guardrails and decision thresholds of Allocate.
-// Start from DefaultAllocationOptions; a zero value fails Validate (Cap and
-// PBestThreshold must be positive).
+// AllocationOptions are the guardrails of Allocate and the thresholds of the
+// settle rule (see Settle). Start from DefaultAllocationOptions; a zero
+// value fails Validate (Cap and SettleConfidence must be positive).
 type AllocationOptions struct {
 	// Policy computes the raw weights. Default: nil, which selects
 	// thompson-bayes (Thompson{Source: PosteriorLikelihood}).
@@ -355,13 +356,17 @@ type AllocationOptions struct {
 	// BurnInConversions is the number of conversions every active arm needs
 	// before the policy is used. Default: 5 (common practice).
 	BurnInConversions float64
-	// PBestThreshold is the leader's P(best) needed to settle. Default: 0.95.
-	// Range (0, 1].
-	PBestThreshold float64
-	// LossThreshold is the leader's expected loss needed to settle, relative
-	// to its posterior mean: settled needs ExpectedLoss < LossThreshold *
-	// mean. Default: 0.01. Must be >= 0.
-	LossThreshold float64
+	// SettleConfidence is the probability with which the settle rule's
+	// anytime-valid bounds hold at every refit at once: it names a wrong
+	// arm (one worse than the best by more than SettleTolerance) with
+	// probability at most 1 - SettleConfidence, however often it is
+	// checked. Default: 0.95. Range (0, 1).
+	SettleConfidence float64
+	// SettleTolerance is the relative shortfall from the best arm's
+	// eventual rate that still counts as a right call: the rule names arm
+	// i only when its rate is at least (1 - SettleTolerance) times every
+	// other arm's. Default: 0.01. Range [0, 1).
+	SettleTolerance float64
 }
 
 // DefaultAllocationOptions returns the documented defaults.
@@ -372,8 +377,8 @@ func DefaultAllocationOptions() AllocationOptions {
 		MaxChange:         0.10,
 		BurnInClicks:      100,
 		BurnInConversions: 5,
-		PBestThreshold:    0.95,
-		LossThreshold:     0.01,
+		SettleConfidence:  0.95,
+		SettleTolerance:   0.01,
 	}
 }
 
@@ -403,11 +408,11 @@ func (o AllocationOptions) Validate() error {
 	if !(o.BurnInConversions >= 0) || math.IsInf(o.BurnInConversions, 0) {
 		errs = append(errs, fmt.Errorf("burn-in conversions %v must be finite and >= 0", o.BurnInConversions))
 	}
-	if !(o.PBestThreshold > 0 && o.PBestThreshold <= 1) {
-		errs = append(errs, fmt.Errorf("p-best threshold %v not in (0, 1]", o.PBestThreshold))
+	if !(o.SettleConfidence > 0 && o.SettleConfidence < 1) {
+		errs = append(errs, fmt.Errorf("settle confidence %v not in (0, 1)", o.SettleConfidence))
 	}
-	if !(o.LossThreshold >= 0) || math.IsInf(o.LossThreshold, 0) {
-		errs = append(errs, fmt.Errorf("loss threshold %v must be finite and >= 0", o.LossThreshold))
+	if !(o.SettleTolerance >= 0 && o.SettleTolerance < 1) {
+		errs = append(errs, fmt.Errorf("settle tolerance %v not in [0, 1)", o.SettleTolerance))
 	}
 	if err := errors.Join(errs...); err != nil {
 		return fmt.Errorf("allocation options: %w", err)
@@ -437,8 +442,11 @@ type Allocation struct {
 	// Leader is the index of the active arm with the largest PBest (lowest
 	// index on ties).
 	Leader int
-	// Status is collecting (burn-in), adapting or settled.
+	// Status is collecting (burn-in) or adapting; EvaluateExperiment turns
+	// it into settled when the settle rule fires.
 	Status AllocationStatus
+	// BurnIn says, during burn-in, which arm is short of what.
+	BurnIn string
 	// Policy is the name of the policy that produced RawWeights.
 	Policy string
 	// EffectiveFloor, EffectiveCap and EffectiveMaxChange are the bounds
@@ -458,12 +466,9 @@ const (
 //
 // Steps: validate; if some active arm is below the burn-in thresholds the raw
 // weights are uniform over the active arms (status collecting), otherwise the
-// policy's; P(best) and expected loss are computed under the likelihood
-// posterior for reporting and for the settle rule; guardrails are applied.
-//
-// Settle rule: status is settled when burn-in is over, the leader's P(best)
-// >= PBestThreshold and its expected loss < LossThreshold * its posterior
-// mean. Settling is a report only: the policy's weights stay in use.
+// policy's (status adapting); P(best) and expected loss are computed under
+// the likelihood posterior for reporting; guardrails are applied. The settle
+// rule is applied afterwards by Settle (EvaluateExperiment does both).
 //
 // Guardrails: the weights are the Euclidean projection of the raw weights onto
 // {w : sum w = 1, paused w = 0, lo_i <= w_i <= hi_i}, with lo_i = max(floor,
@@ -526,16 +531,26 @@ func Allocate(arms []ArmInput, prev []float64, opts AllocationOptions, seed uint
 	out.Leader = active[leadJ]
 
 	// Raw weights.
-	burnedIn := true
 	for _, a := range act {
-		if a.Clicks < opts.BurnInClicks || a.Conversions < opts.BurnInConversions {
-			burnedIn = false
-			break
+		switch {
+		case a.Clicks < opts.BurnInClicks:
+			out.BurnIn = fmt.Sprintf("%s has %g of %g clicks", a.Arm, a.Clicks, opts.BurnInClicks)
+		case a.Conversions < opts.BurnInConversions:
+			out.BurnIn = fmt.Sprintf("%s has %g of %g conversions", a.Arm, a.Conversions, opts.BurnInConversions)
+		default:
+			continue
 		}
+		break
 	}
 	var raw []float64
-	if burnedIn {
-		raw, err = pol.Weights(act, rand.New(rand.NewPCG(seed, allocStreamPolicy)))
+	if out.BurnIn == "" {
+		if t, ok := pol.(Thompson); ok && t.Source == PosteriorLikelihood && t.Draws == opts.Draws {
+			// Thompson sampling on the reporting posterior: its weights are
+			// the P(best) just computed.
+			raw = slices.Clone(rep.PBest)
+		} else {
+			raw, err = pol.Weights(act, rand.New(rand.NewPCG(seed, allocStreamPolicy)))
+		}
 		if err != nil {
 			return Allocation{}, fmt.Errorf("allocate: policy %s: %w", pol.Name(), err)
 		}
@@ -543,10 +558,6 @@ func Allocate(arms []ArmInput, prev []float64, opts AllocationOptions, seed uint
 			return Allocation{}, fmt.Errorf("allocate: policy %s: %w", pol.Name(), err)
 		}
 		out.Status = StatusAdapting
-		leadMean := likPosts[leadJ].Mean()
-		if rep.PBest[leadJ] >= opts.PBestThreshold && rep.ExpectedLoss[leadJ] < opts.LossThreshold*leadMean {
-			out.Status = StatusSettled
-		}
 	} else {
 		raw = allocUniform(len(act))
 		out.Status = StatusCollecting

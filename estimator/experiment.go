@@ -35,6 +35,12 @@ type ExperimentInput struct {
 	Allocation AllocationOptions
 	// PrevWeights are the weights last published, indexed like Arms, or nil.
 	PrevWeights []float64
+	// PrevSettle is the settle state of the previous evaluation (the
+	// report's SettledAt and Settle.Arm when it was settled), or nil.
+	PrevSettle *SettleState
+	// Prior is the prior of every arm's model parameters. Default: the zero
+	// value (DefaultPrior's values).
+	Prior Prior
 	// Seed drives every random draw. Default: 0, which derives a seed from
 	// the experiment id and as-of time, so replays reproduce the weights.
 	Seed uint64
@@ -43,17 +49,38 @@ type ExperimentInput struct {
 // ExperimentReport is the estimate of one experiment at one as-of time:
 // what `ripen fit` prints and what allocation messages carry.
 type ExperimentReport struct {
-	Experiment string             `json:"experiment"`
-	AsOf       string             `json:"as_of"`
-	Status     AllocationStatus   `json:"status"`
-	Policy     string             `json:"policy"`
-	Leader     string             `json:"leader"`
-	Weights    map[string]float64 `json:"weights"`
-	Arms       []ArmReport        `json:"arms"`
+	Experiment string           `json:"experiment"`
+	AsOf       string           `json:"as_of"`
+	Status     AllocationStatus `json:"status"`
+	// SettledAt is the event time at which the settle rule first named the
+	// settled arm; empty while not settled.
+	SettledAt string             `json:"settled_at,omitempty"`
+	Settle    SettleReport       `json:"settle"`
+	Policy    string             `json:"policy"`
+	Leader    string             `json:"leader"`
+	Weights   map[string]float64 `json:"weights"`
+	Arms      []ArmReport        `json:"arms"`
 
 	// Fits are the arms' fits, indexed like Arms, for warm starts; not
 	// serialised.
 	Fits []*Fit `json:"-"`
+	// SettleState is the settle state to pass to the next evaluation as
+	// PrevSettle (nil when not settled); not serialised (SettledAt and
+	// Settle.Arm carry it).
+	SettleState *SettleState `json:"-"`
+}
+
+// PrevSettle returns the settle state a report carries, for the next
+// evaluation's ExperimentInput.PrevSettle: nil unless it is settled.
+func (r *ExperimentReport) PrevSettle() (*SettleState, error) {
+	if r.Status != StatusSettled || r.SettledAt == "" || r.Settle.Arm == "" {
+		return nil, nil
+	}
+	t, err := time.Parse(time.RFC3339Nano, r.SettledAt)
+	if err != nil {
+		return nil, fmt.Errorf("report %q: settled_at: %w", r.Experiment, err)
+	}
+	return &SettleState{Arm: r.Settle.Arm, At: t.UnixMilli()}, nil
 }
 
 // ArmReport is the estimate of one arm.
@@ -66,14 +93,22 @@ type ArmReport struct {
 	// RipeClicks weights each click by the probability its conversion, if
 	// any, would have been seen by now.
 	RipeClicks float64 `json:"ripe_clicks"`
-	// EventualCVR is the fitted probability q of converting within the
-	// window; CVRLow and CVRHigh its 95% credible interval from the
-	// likelihood posterior.
+	// MaturedClicks are the clicks older than the attribution window, whose
+	// outcome is known.
+	MaturedClicks uint64 `json:"matured_clicks"`
+	// EventualCVR is the posterior median of the probability q of
+	// converting within the window; CVRLow and CVRHigh its 95% equal-tailed
+	// credible interval (the median always lies inside it).
 	EventualCVR float64 `json:"eventual_cvr"`
 	CVRLow      float64 `json:"cvr_low"`
 	CVRHigh     float64 `json:"cvr_high"`
-	// PosteriorMean is the likelihood posterior's mean of q.
+	// PosteriorMean is the posterior mean of q.
 	PosteriorMean float64 `json:"posterior_mean"`
+	// AnytimeLow and AnytimeHigh bound the eventual rate at every refit
+	// at once, from matured clicks and seen conversions only (the settle
+	// rule's evidence; see Settle).
+	AnytimeLow  float64 `json:"anytime_low"`
+	AnytimeHigh float64 `json:"anytime_high"`
 	// BetaMean, BetaLow and BetaHigh summarise the delay-corrected Beta
 	// posterior Beta(conversions+1, ripe clicks-conversions+1).
 	BetaMean float64 `json:"beta_mean"`
@@ -90,7 +125,12 @@ type ArmReport struct {
 
 // Delay describes an arm's fitted delay distribution and fit diagnostics.
 type Delay struct {
+	// Family is the delay family reported: the one with the largest
+	// posterior probability when families are averaged.
 	Family string `json:"family"`
+	// Families are the posterior probabilities of the delay families
+	// averaged by the auto setting (absent for a single family).
+	Families map[string]float64 `json:"families,omitempty"`
 	// MeanHours is the mean delay of converters, E[D | D <= W], in hours.
 	MeanHours float64 `json:"mean_hours"`
 	// RatePerHour is the exponential rate.
@@ -139,9 +179,12 @@ func EvaluateExperiment(in ExperimentInput) (ExperimentReport, error) {
 		Fits:       make([]*Fit, len(in.Arms)),
 	}
 	inputs := make([]ArmInput, len(in.Arms))
+	evidence := make([]ArmEvidence, len(in.Arms))
+	paused := make([]bool, len(in.Arms))
+	names := make([]string, len(in.Arms))
 	var errs []error
 	for i, a := range in.Arms {
-		ar, fit, post, err := evaluateArm(a, in.Fit)
+		ar, fit, post, err := evaluateArm(a, in.Fit, in.Prior)
 		if err != nil {
 			errs = append(errs, fmt.Errorf("arm %q: %w", a.Arm, err))
 			continue
@@ -156,6 +199,14 @@ func EvaluateExperiment(in ExperimentInput) (ExperimentReport, error) {
 			Likelihood:  post,
 			Paused:      a.Paused,
 		}
+		mc, mv := a.State.Matured()
+		evidence[i] = ArmEvidence{
+			Clicks:             float64(ar.Clicks),
+			Conversions:        float64(ar.Conversions),
+			MaturedClicks:      float64(mc),
+			MaturedConversions: float64(mv),
+		}
+		paused[i], names[i] = a.Paused, a.Arm
 	}
 	if err := errors.Join(errs...); err != nil {
 		return ExperimentReport{}, fmt.Errorf("experiment %q: %w", in.Experiment, err)
@@ -164,52 +215,83 @@ func EvaluateExperiment(in ExperimentInput) (ExperimentReport, error) {
 	if err != nil {
 		return ExperimentReport{}, fmt.Errorf("experiment %q: %w", in.Experiment, err)
 	}
+	set, err := Settle(SettleInput{
+		Arms: names, Evidence: evidence, Paused: paused,
+		Leader:     alloc.Leader,
+		BurnedIn:   alloc.Status != StatusCollecting,
+		BurnIn:     alloc.BurnIn,
+		Window:     in.Arms[0].State.Layout().Window,
+		AsOf:       in.AsOf,
+		Prev:       in.PrevSettle,
+		Confidence: in.Allocation.SettleConfidence,
+		Tolerance:  in.Allocation.SettleTolerance,
+	})
+	if err != nil {
+		return ExperimentReport{}, fmt.Errorf("experiment %q: %w", in.Experiment, err)
+	}
 	rep.Status = alloc.Status
+	rep.Settle = set.Report
+	rep.SettleState = set.State
+	if set.Report.Settled {
+		rep.Status = StatusSettled
+		rep.SettledAt = time.UnixMilli(set.State.At).UTC().Format(time.RFC3339Nano)
+	}
 	rep.Policy = alloc.Policy
 	rep.Leader = alloc.Arms[alloc.Leader]
 	for i := range rep.Arms {
 		rep.Arms[i].PBest = alloc.PBest[i]
 		rep.Arms[i].ExpectedLoss = alloc.ExpectedLoss[i]
 		rep.Arms[i].Weight = alloc.Weights[i]
+		rep.Arms[i].AnytimeLow, rep.Arms[i].AnytimeHigh = set.Low[i], set.High[i]
 		rep.Weights[rep.Arms[i].Arm] = alloc.Weights[i]
 	}
 	return rep, nil
 }
 
-// evaluateArm fits one arm and summarises its two posteriors.
-func evaluateArm(a ArmData, opts FitOptions) (ArmReport, *Fit, Posterior, error) {
+// evaluateArm fits one arm and summarises its two posteriors: the
+// integrated posterior of q (averaged over families for FamilyAuto) and
+// the delay-corrected Beta of its most probable family's fit.
+func evaluateArm(a ArmData, opts FitOptions, prior Prior) (ArmReport, *Fit, Posterior, error) {
 	if a.State == nil {
 		return ArmReport{}, nil, nil, errors.New("no state")
 	}
 	data := a.State.FitData()
-	opts.Warm = a.Warm
-	fit, err := FitModel(&data, opts)
+	post, err := ArmPosterior(&data, opts.Family, prior, a.Warm)
 	if err != nil {
-		return ArmReport{}, nil, nil, fmt.Errorf("fit: %w", err)
+		return ArmReport{}, nil, nil, err
 	}
-	post, err := NewLikelihoodPosterior(&data, fit)
-	if err != nil {
-		return ArmReport{}, nil, nil, fmt.Errorf("likelihood posterior: %w", err)
+	fit := post.Fit()
+	if fit == nil {
+		return ArmReport{}, nil, nil, errors.New("posterior without a fit")
 	}
 	beta, err := fit.DelayCorrectedBeta()
 	if err != nil {
 		return ArmReport{}, nil, nil, err
 	}
 	clicks, convs := a.State.Clicks(), a.State.Conversions()
+	matured, _ := a.State.Matured()
+	lo, hi := post.Interval(credibleMass)
 	ar := ArmReport{
 		Arm:           a.Arm,
 		Clicks:        clicks,
 		Conversions:   convs,
+		MaturedClicks: matured,
 		RipeClicks:    fit.RipeClicks,
-		EventualCVR:   fit.Q,
-		CVRLow:        post.Quantile((1 - credibleMass) / 2),
-		CVRHigh:       post.Quantile((1 + credibleMass) / 2),
+		EventualCVR:   post.Median,
+		CVRLow:        lo,
+		CVRHigh:       hi,
 		PosteriorMean: post.Mean(),
 		BetaMean:      beta.Mean(),
 		BetaLow:       beta.Quantile((1 - credibleMass) / 2),
 		BetaHigh:      beta.Quantile((1 + credibleMass) / 2),
 		Paused:        a.Paused,
 		Delay:         describeDelay(fit),
+	}
+	if len(post.Families) > 1 {
+		ar.Delay.Families = make(map[string]float64, len(post.Families))
+		for _, f := range post.Families {
+			ar.Delay.Families[f.Family.String()] = f.Weight
+		}
 	}
 	if clicks > 0 {
 		ar.ObservedCVR = float64(convs) / float64(clicks)

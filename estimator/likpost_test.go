@@ -123,12 +123,14 @@ func TestEarlyReplications(t *testing.T) {
 	}
 }
 
-// TestPosteriorMaturedIsBeta checks the likelihood posterior against the
-// conjugate result when every click has matured: the likelihood in q is
-// then binomial, q^C (1-q)^(N-C), whatever the delay parameters, so under
-// a flat prior the posterior is Beta(C+1, N-C+1) (Bayes–Laplace; e.g.
-// Gelman et al., Bayesian Data Analysis, 3rd ed., 2013, section 2.1).
-// Quantiles are compared with gonum's distuv.Beta.
+// TestPosteriorMaturedIsBeta checks the posterior against the conjugate
+// result when every click has matured: the likelihood in q is then
+// binomial, q^C (1-q)^(N-C), whatever the delay parameters, so under a
+// Beta(a, b) prior the posterior is Beta(C+a, N-C+b) (e.g. Gelman et al.,
+// Bayesian Data Analysis, 3rd ed., 2013, section 2.4): Beta(C+1/2,
+// N-C+1/2) for the integrated posterior's Jeffreys prior, Beta(C+1,
+// N-C+1) for the histogram family's profile posterior with its flat
+// prior. Quantiles are compared with gonum's distuv.Beta.
 func TestPosteriorMaturedIsBeta(t *testing.T) {
 	r := rand.New(rand.NewPCG(31, 32))
 	const window = 7 * daySec
@@ -156,11 +158,18 @@ func TestPosteriorMaturedIsBeta(t *testing.T) {
 			if f.Q != conv/float64(c.n) {
 				t.Errorf("q = %v, want C/N = %v", f.Q, conv/float64(c.n))
 			}
-			post, err := NewLikelihoodPosteriorWithOptions(d, f, PosteriorOptions{QPoints: 401})
+			var post Posterior
+			prior := DefaultPriorQ
+			if c.family == FamilyHistogram {
+				post, err = NewLikelihoodPosteriorWithOptions(d, f, PosteriorOptions{QPoints: 401})
+				prior = 1
+			} else {
+				post, err = ArmPosterior(d, c.family, Prior{}, nil)
+			}
 			if err != nil {
 				t.Fatal(err)
 			}
-			ref := distuv.Beta{Alpha: conv + 1, Beta: float64(c.n) - conv + 1}
+			ref := distuv.Beta{Alpha: conv + prior, Beta: float64(c.n) - conv + prior}
 			sd := ref.StdDev()
 			if math.Abs(post.Mean()-ref.Mean()) > 1e-3*sd {
 				t.Errorf("mean %.6f, Beta mean %.6f", post.Mean(), ref.Mean())
@@ -170,6 +179,7 @@ func TestPosteriorMaturedIsBeta(t *testing.T) {
 					t.Errorf("quantile %v = %.6f, Beta %.6f", p, got, want)
 				}
 			}
+			ref = distuv.Beta{Alpha: conv + 1, Beta: float64(c.n) - conv + 1}
 			// The delay-corrected Beta agrees too: every click is ripe.
 			b, err := f.DelayCorrectedBeta()
 			if err != nil {

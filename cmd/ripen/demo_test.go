@@ -4,8 +4,9 @@ import (
 	"bufio"
 	"bytes"
 	"context"
-	"encoding/json"
+	"io"
 	"math"
+	"net/http"
 	"os"
 	"os/exec"
 	"path/filepath"
@@ -14,178 +15,9 @@ import (
 	"testing"
 	"time"
 
-	"ripen/consumer"
-	"ripen/estimator/sim"
+	"ripen/console"
+	"ripen/consumer/closedloop"
 )
-
-// dkwEpsilon is the half-width of the Dvoretzky–Kiefer–Wolfowitz
-// confidence band of an empirical CDF of n draws: P(sup|F_n - F| > eps)
-// <= 2 exp(-2 n eps^2) (Dvoretzky, Kiefer & Wolfowitz 1956, with the tight
-// constant of Massart 1990, "The tight constant in the DKW inequality",
-// Ann. Probab. 18(3)).
-func dkwEpsilon(n int, alpha float64) float64 {
-	return math.Sqrt(math.Log(2/alpha) / (2 * float64(n)))
-}
-
-// TestDemoGeneratorMatchesScenario checks the demo's traffic against the
-// laws it is drawn from: Poisson arrivals, arms split by the weights,
-// Bernoulli conversions and the truncated delay distribution.
-func TestDemoGeneratorMatchesScenario(t *testing.T) {
-	sc, err := demoScenario(demoFlags{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	weights := []float64{0.5, 0.3, 0.2}
-	g, err := newDemoGenerator(sc)
-	if err != nil {
-		t.Fatal(err)
-	}
-	const chunkMs = 2 * 3600 * 1000
-	horizon := sc.Horizon.D().Milliseconds()
-	clickTS := map[string]int64{}
-	clickArm := map[string]int{}
-	var delays [][]float64 = make([][]float64, len(sc.Arms))
-	converted := map[string]bool{}
-	var lastEnd int64
-	for target := int64(chunkMs); target <= horizon; target += chunkMs {
-		clicks, convs := g.chunk(target, weights)
-		if len(clicks) == 0 {
-			t.Fatalf("chunk to %d has no click", target)
-		}
-		prev := int64(math.MinInt64)
-		for i, m := range clicks {
-			var c struct {
-				ClickID string `json:"click_id"`
-				Arm     string `json:"arm"`
-				TS      int64  `json:"ts"`
-			}
-			if err := json.Unmarshal(m.Value, &c); err != nil {
-				t.Fatal(err)
-			}
-			el := c.TS - sim.Start
-			if c.TS < prev || el < lastEnd {
-				t.Fatalf("click %s at %d out of order", c.ClickID, c.TS)
-			}
-			prev = c.TS
-			// Only the chunk's last click reaches the target.
-			if last := i == len(clicks)-1; last != (el >= target) {
-				t.Fatalf("click %d of %d at elapsed %d, target %d", i, len(clicks), el, target)
-			}
-			clickTS[c.ClickID] = c.TS
-			clickArm[c.ClickID] = slices.Index(g.arms, c.Arm)
-		}
-		lastEnd = prev - sim.Start
-		prev = math.MinInt64
-		for _, m := range convs {
-			var v struct {
-				ClickID string `json:"click_id"`
-				TS      int64  `json:"ts"`
-			}
-			if err := json.Unmarshal(m.Value, &v); err != nil {
-				t.Fatal(err)
-			}
-			ct, ok := clickTS[v.ClickID]
-			switch {
-			case !ok:
-				t.Fatalf("conversion of unknown click %s", v.ClickID)
-			case v.TS < prev || v.TS-sim.Start >= target || v.TS < ct:
-				t.Fatalf("conversion %s at %d out of order (target %d, click %d)", v.ClickID, v.TS, target, ct)
-			case converted[v.ClickID]:
-				t.Fatalf("click %s converted twice", v.ClickID)
-			}
-			prev = v.TS
-			converted[v.ClickID] = true
-			if ct-sim.Start < horizon-sc.Window.D().Milliseconds() {
-				delays[clickArm[v.ClickID]] = append(delays[clickArm[v.ClickID]], float64(v.TS-ct)/1000)
-			}
-		}
-	}
-
-	// Arrivals: a Poisson process, so the count over the horizon has
-	// variance equal to its mean (Ross, Introduction to Probability Models,
-	// ch. 5); the day cycle integrates to zero over whole days.
-	n := len(clickTS)
-	mean := sc.ClicksPerHour * sc.Horizon.Hours()
-	if math.Abs(float64(n)-mean) > 4*math.Sqrt(mean) {
-		t.Errorf("%d clicks, want %.0f ± %.0f (4 Poisson SD)", n, mean, 4*math.Sqrt(mean))
-	}
-	early := map[int]int{} // clicks old enough that every conversion is in
-	earlyConv := map[int]int{}
-	for id, ts := range clickTS {
-		if ts-sim.Start < horizon-sc.Window.D().Milliseconds() {
-			early[clickArm[id]]++
-			if converted[id] {
-				earlyConv[clickArm[id]]++
-			}
-		}
-	}
-	for i, a := range sc.Arms {
-		t.Run(a.Name, func(t *testing.T) {
-			// Split: binomial(n, w) per arm.
-			got := 0
-			for _, arm := range clickArm {
-				if arm == i {
-					got++
-				}
-			}
-			want, sd := float64(n)*weights[i], math.Sqrt(float64(n)*weights[i]*(1-weights[i]))
-			if math.Abs(float64(got)-want) > 4*sd {
-				t.Errorf("%d clicks, want %.0f ± %.0f (4 binomial SD)", got, want, 4*sd)
-			}
-			// Conversions of clicks older than the window: binomial(q).
-			m := early[i]
-			want, sd = float64(m)*a.CVR, math.Sqrt(float64(m)*a.CVR*(1-a.CVR))
-			if math.Abs(float64(earlyConv[i])-want) > 4*sd {
-				t.Errorf("%d of %d clicks converted, want %.0f ± %.0f", earlyConv[i], m, want, 4*sd)
-			}
-			// Delays: the empirical CDF stays within the DKW band around
-			// the scenario's delay law truncated at the window.
-			dist, err := a.Delay.Distribution()
-			if err != nil {
-				t.Fatal(err)
-			}
-			truth, err := sim.NewTruncated(dist, sc.Window.D().Seconds())
-			if err != nil {
-				t.Fatal(err)
-			}
-			d := slices.Clone(delays[i])
-			slices.Sort(d)
-			eps := dkwEpsilon(len(d), 1e-4)
-			for j, x := range d {
-				// Just below and at x the empirical CDF is j/n and
-				// (j+1)/n; both must lie within eps of the true CDF.
-				f := truth.CDF(x)
-				if below, at := float64(j)/float64(len(d)), float64(j+1)/float64(len(d)); math.Abs(f-below) > eps || math.Abs(f-at) > eps {
-					t.Fatalf("delay %d of %d = %.0fs: true CDF %.4f, empirical %.4f..%.4f, DKW band ± %.4f", j, len(d), x, f, below, at, eps)
-				}
-			}
-		})
-	}
-}
-
-func TestWeightsFor(t *testing.T) {
-	arms := []string{"a", "b", "c"}
-	prev := []float64{0.2, 0.3, 0.5}
-	for _, tc := range []struct {
-		name string
-		pub  map[string]float64
-		want []float64
-	}{
-		{"normalised", map[string]float64{"a": 1, "b": 1, "c": 2}, []float64{0.25, 0.25, 0.5}},
-		{"missing arm keeps prev", map[string]float64{"a": 1, "b": 1}, prev},
-		{"negative keeps prev", map[string]float64{"a": 1, "b": -1, "c": 1}, prev},
-		{"all zero keeps prev", map[string]float64{"a": 0, "b": 0, "c": 0}, prev},
-	} {
-		t.Run(tc.name, func(t *testing.T) {
-			got := weightsFor(arms, tc.pub, prev)
-			for i := range got {
-				if math.Abs(got[i]-tc.want[i]) > 1e-12 {
-					t.Fatalf("weightsFor = %v, want %v", got, tc.want)
-				}
-			}
-		})
-	}
-}
 
 // TestDemoShortAdapts runs `ripen demo --short` end to end on each state
 // store: the real service consumes the simulated traffic from the
@@ -210,16 +42,16 @@ func TestDemoShortAdapts(t *testing.T) {
 		// span to keep the package's test time down.
 		full bool
 	}{
-		{demoStoreServer, []string{"--short"}, true},
-		{demoStoreEmbedded, []string{"--days", "1"}, false},
+		{closedloop.StoreServer, []string{"--short"}, true},
+		{closedloop.StoreEmbedded, []string{"--days", "1"}, false},
 	} {
 		t.Run(tc.store, func(t *testing.T) {
-			if tc.store == demoStoreServer {
-				if _, err := exec.LookPath(demoRedisBinary); err != nil {
+			if tc.store == closedloop.StoreServer {
+				if _, err := exec.LookPath(closedloop.RedisBinary); err != nil {
 					if os.Getenv("CI") != "" {
-						t.Fatalf("%s not on PATH and CI is set", demoRedisBinary)
+						t.Fatalf("%s not on PATH and CI is set", closedloop.RedisBinary)
 					}
-					t.Skipf("%s not on PATH", demoRedisBinary)
+					t.Skipf("%s not on PATH", closedloop.RedisBinary)
 				}
 			}
 			dir := filepath.Join(t.TempDir(), "report")
@@ -238,6 +70,9 @@ func TestDemoShortAdapts(t *testing.T) {
 			}
 			if !strings.Contains(out.String(), "allocations published") || strings.Contains(out.String(), "\033[") {
 				t.Errorf("want plain progress lines and a summary on a non-terminal, got:\n%s", out.String())
+			}
+			if !strings.Contains(out.String(), "console: http://127.0.0.1:") {
+				t.Errorf("the console's address is not printed:\n%s", out.String())
 			}
 			allocs := readAllocations(t, filepath.Join(dir, "allocations.jsonl"))
 			if len(allocs) < 5 {
@@ -259,13 +94,10 @@ func TestDemoShortAdapts(t *testing.T) {
 			if err != nil {
 				t.Fatal(err)
 			}
-			for _, want := range []string{`<figure id="traffic">`, `<figure id="cvr">`, `<figure id="delay-cdf">`, `<figure id="delay-model">`} {
+			for _, want := range []string{`"id":"traffic"`, `"id":"pbest"`, `"id":"cvr"`, `"id":"delay-cdf"`, `"id":"delay-model"`, `"role":"true"`} {
 				if !bytes.Contains(html, []byte(want)) {
 					t.Errorf("report lacks %s", want)
 				}
-			}
-			if n := bytes.Count(html, []byte("<svg")); n != 4 {
-				t.Errorf("report has %d charts, want 4", n)
 			}
 			if !tc.full {
 				return
@@ -293,7 +125,7 @@ func TestDemoShortAdapts(t *testing.T) {
 	}
 }
 
-func readAllocations(t *testing.T, path string) []consumer.Allocation {
+func readAllocations(t *testing.T, path string) []console.Allocation {
 	t.Helper()
 	f, err := os.Open(path)
 	if err != nil {
@@ -309,7 +141,7 @@ func readAllocations(t *testing.T, path string) []consumer.Allocation {
 	if err := sc.Err(); err != nil {
 		t.Fatal(err)
 	}
-	allocs, err := parseAllocations(raw)
+	allocs, err := console.ParseAllocations(raw)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -317,4 +149,53 @@ func readAllocations(t *testing.T, path string) []consumer.Allocation {
 		t.Errorf("%d messages but %d distinct seqs: an allocation was read twice", len(raw), len(allocs))
 	}
 	return allocs
+}
+
+// TestDemoKeepServing: with --keep-serving the demo writes its report,
+// then keeps its console up until interrupted, and stops cleanly.
+func TestDemoKeepServing(t *testing.T) {
+	ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
+	defer cancel()
+	runCtx, interrupt := context.WithCancel(ctx)
+	defer interrupt()
+	dir := filepath.Join(t.TempDir(), "report")
+	pr, pw := io.Pipe()
+	done := make(chan error, 1)
+	go func() {
+		cmd := newDemoCmd()
+		cmd.SetOut(pw)
+		cmd.SetErr(io.Discard)
+		cmd.SetArgs([]string{"--days", "0.5", "--store", closedloop.StoreEmbedded, "--report", dir, "--keep-serving"})
+		err := cmd.ExecuteContext(runCtx)
+		pw.Close()
+		done <- err
+	}()
+	var consoleURL string
+	lines := bufio.NewScanner(pr)
+	for lines.Scan() {
+		if u, ok := strings.CutSuffix(lines.Text(), " (serving until interrupted)"); ok {
+			consoleURL = strings.TrimPrefix(u, "console: ")
+			break
+		}
+	}
+	go func() { _, _ = io.Copy(io.Discard, pr) }()
+	if consoleURL == "" {
+		t.Fatalf("the demo ended without serving its console: %v", <-done)
+	}
+	if _, err := os.Stat(filepath.Join(dir, "index.html")); err != nil {
+		t.Errorf("report not written before serving: %v", err)
+	}
+	resp, err := http.Get(consoleURL + "console/api/experiments")
+	if err != nil {
+		t.Fatal(err)
+	}
+	body, _ := io.ReadAll(resp.Body)
+	resp.Body.Close()
+	if resp.StatusCode != http.StatusOK || !strings.Contains(string(body), "quillmoss-hero") {
+		t.Errorf("console after the run: %d %s", resp.StatusCode, body)
+	}
+	interrupt()
+	if err := <-done; err != nil {
+		t.Errorf("demo after the interrupt: %v", err)
+	}
 }

@@ -10,6 +10,7 @@ import (
 	"github.com/spf13/cobra"
 	"go.uber.org/zap"
 
+	"ripen/console"
 	"ripen/consumer"
 	"ripen/state"
 )
@@ -27,8 +28,10 @@ func newRunCmd() *cobra.Command {
 conversion to its click, applies per-experiment deltas to Redis together with
 the Kafka offsets they cover, refits experiments on event-time ticks and
 publishes their weights to the allocation topic. Bad events go to the
-dead-letter topic with a reason. /metrics, /livez, /readyz and /v1 are served
-on the HTTP address.
+dead-letter topic with a reason. /metrics, /livez, /readyz, /v1 and the
+read-only web console (at /) are served on the HTTP address; http_auth
+protects the console and /v1 with a bearer token or basic auth, and must be
+set when the address is not loopback (or allow_unauthenticated: true).
 
 Settings come from the YAML file (--config or RIPEN_CONFIG), then RIPEN_*
 environment variables, then flags. SIGTERM or SIGINT stops fetching, flushes,
@@ -70,6 +73,14 @@ commits and exits within shutdown_timeout.`,
 			return &exitError{code: 2, err: err}
 		}
 		log.Info("starting", zap.Any("config", cfg.Redacted()))
+		if !cfg.HTTPAuth.Enabled() && !consumer.IsLoopback(cfg.HTTP) {
+			log.Warn("the web console and /v1 are served without a credential beyond loopback (http_auth.allow_unauthenticated)", zap.String("http", cfg.HTTP))
+		}
+		web, err := console.NewHandler(console.Options{Source: svc, Metrics: reg, Logger: log})
+		if err != nil {
+			return err
+		}
+		handler := consumer.NewServiceHandler(svc, reg, log, consumer.HTTPOptions{Auth: cfg.HTTPAuth, Console: web})
 
 		ctx := cmd.Context()
 		var wg sync.WaitGroup
@@ -77,7 +88,7 @@ commits and exits within shutdown_timeout.`,
 		wg.Add(1)
 		go func() {
 			defer wg.Done()
-			httpErr <- consumer.ServeHTTP(ctx, cfg.HTTP, consumer.NewHTTPHandler(svc, reg, log))
+			httpErr <- consumer.ServeHTTP(ctx, cfg.HTTP, handler)
 		}()
 		runErr := svc.Run(ctx)
 		wg.Wait()

@@ -12,7 +12,7 @@ import (
 
 	"github.com/spf13/cobra"
 
-	"ripen/cmd/ripen/report"
+	"ripen/console/report"
 	"ripen/estimator"
 	"ripen/estimator/sim"
 )
@@ -46,7 +46,7 @@ with its standard error; the ratio of the policy's mean regret to
 thompson-observed's over the same runs, with its delta-method standard
 error; the share of traffic sent to the best arm; how often the settle rule
 fired and how often it named a wrong arm (one whose true eventual rate was
-more than the loss threshold below the best arm's at that time); runs whose
+more than the settle tolerance below the best arm's at that time); runs whose
 status went from settled back to not settled; the median time of the first
 settle; and the mean absolute error of the observed and eventual CVR at the
 updates nearest 12, 24 and 48 hours. A pooled line per policy gives the

@@ -27,10 +27,10 @@ type simulateOutput struct {
 	FitFamily    string        `json:"fit_family"`
 	Arms         []simulateArm `json:"arms"`
 	// Reference is the policy regret ratios are taken against, and
-	// LossThreshold the relative loss within which a settle is right.
-	Reference     string           `json:"reference"`
-	LossThreshold float64          `json:"loss_threshold"`
-	Policies      []simulatePolicy `json:"policies"`
+	// SettleTolerance the relative shortfall within which a settle is right.
+	Reference       string           `json:"reference"`
+	SettleTolerance float64          `json:"settle_tolerance"`
+	Policies        []simulatePolicy `json:"policies"`
 }
 
 type simulateArm struct {
@@ -50,7 +50,7 @@ type simulatePolicy struct {
 	BestArmShare  float64  `json:"best_arm_share"`
 	SettledRuns   int      `json:"settled_runs"`
 	// SettleShare is settled runs over runs; SettledWrong the settled runs
-	// that named an arm more than the loss threshold below the best.
+	// that named an arm more than the settle tolerance below the best.
 	SettleShare  float64 `json:"settle_share"`
 	SettledWrong int     `json:"settled_wrong"`
 	// SettledCorrect, SettleWrongShare and SettleHoursMedian are null when
@@ -119,16 +119,16 @@ func optional(x float64) *float64 {
 func simulateJSON(res *sim.Result) simulateOutput {
 	sc := res.Scenario
 	out := simulateOutput{
-		Scenario:      sc.Name,
-		Description:   sc.Description,
-		Runs:          res.Runs,
-		Seed:          res.Seed,
-		HorizonHours:  sc.Horizon.Hours(),
-		UpdateHours:   sc.UpdateInterval.Hours(),
-		WindowHours:   sc.Window.Hours(),
-		FitFamily:     sc.FitFamily,
-		Reference:     simulateReference,
-		LossThreshold: res.LossThreshold,
+		Scenario:        sc.Name,
+		Description:     sc.Description,
+		Runs:            res.Runs,
+		Seed:            res.Seed,
+		HorizonHours:    sc.Horizon.Hours(),
+		UpdateHours:     sc.UpdateInterval.Hours(),
+		WindowHours:     sc.Window.Hours(),
+		FitFamily:       sc.FitFamily,
+		Reference:       simulateReference,
+		SettleTolerance: res.SettleTolerance,
 	}
 	for _, a := range sc.Arms {
 		out.Arms = append(out.Arms, simulateArm{Arm: a.Name, CVR: a.CVR})
@@ -204,7 +204,7 @@ func printSimulateTable(w io.Writer, results []*sim.Result) error {
 			out.Scenario, out.Runs, out.Seed, out.HorizonHours, out.UpdateHours, out.WindowHours, out.FitFamily)
 	}
 	fmt.Fprintf(w, "\nregret: expected conversions lost; vs %s: ratio of mean regrets over the same runs (± delta-method SE);\n", simulateReference)
-	fmt.Fprintf(w, "wrong: settles naming an arm more than %g%% below the best; flips: runs whose status left settled again;\n", 100*results[0].LossThreshold)
+	fmt.Fprintf(w, "wrong: settles naming an arm more than %g%% below the best; flips: runs whose status left settled again;\n", 100*results[0].SettleTolerance)
 	fmt.Fprintln(w, "CVR MAE observed/eventual at the update nearest each time.")
 	fmt.Fprintln(w)
 	tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', tabwriter.AlignRight)

@@ -91,10 +91,10 @@ func TestSimulateReport(t *testing.T) {
 	page := string(html)
 	// One regret chart, one traffic chart per policy, a CVR chart and a
 	// delay CDF chart.
-	if n := strings.Count(page, "<svg"); n != 5 {
-		t.Errorf("%d <svg elements, want 5", n)
+	if n := strings.Count(page, `"series":[`); n != 5 {
+		t.Errorf("%d charts, want 5", n)
 	}
-	for _, id := range []string{`id="regret"`, `id="traffic-thompson-delay"`, `id="traffic-top-two"`, `id="cvr"`, `id="delay-cdf"`} {
+	for _, id := range []string{`"id":"regret"`, `"id":"traffic-thompson-delay"`, `"id":"traffic-top-two"`, `"id":"cvr"`, `"id":"delay-cdf"`} {
 		if !strings.Contains(page, id) {
 			t.Errorf("report lacks chart %s", id)
 		}

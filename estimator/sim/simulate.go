@@ -45,10 +45,10 @@ type Result struct {
 	// Runs and Seed are the number of runs per policy and the base seed.
 	Runs int
 	Seed uint64
-	// LossThreshold is the simulated service's relative loss threshold
+	// SettleTolerance is the simulated service's settle tolerance
 	// (estimator.AllocationOptions): a settle naming an arm within it of the
 	// best counts as right.
-	LossThreshold float64
+	SettleTolerance float64
 	// Arms are the arm names in scenario order.
 	Arms []string
 	// Hours are the update times, in hours since the start; every series
@@ -87,7 +87,7 @@ type PolicyResult struct {
 	// SettledRuns counts the runs in which the settle rule fired at some
 	// update. SettledWrong counts those whose leader at the first settle
 	// was wrong: its true eventual CVR at that time below (1 -
-	// LossThreshold) times the best arm's (an arm within the stated loss of
+	// SettleTolerance) times the best arm's (an arm within the tolerance of
 	// the best counts as right). SettledCorrect is the share of settled
 	// runs that were right (NaN when none settled), and SettleHoursMedian
 	// the median time of the first settle (NaN when none).
@@ -237,7 +237,7 @@ feed:
 		}
 	}
 
-	res := &Result{Scenario: c.sc, Runs: runs, Seed: seed, LossThreshold: alloc.LossThreshold, Arms: c.sc.ArmNames()}
+	res := &Result{Scenario: c.sc, Runs: runs, Seed: seed, SettleTolerance: alloc.SettleTolerance, Arms: c.sc.ArmNames()}
 	q := make([]float64, c.k)
 	for t := int64(1); ; t++ {
 		at := min(t*c.updateMs, c.horizonMs)
@@ -335,6 +335,7 @@ func (c *compiled) simulate(ctx context.Context, alloc estimator.AllocationOptio
 		weights[i] = 1 / float64(k)
 	}
 	var prev []float64
+	var settle *estimator.SettleState
 	var pending convHeap
 	trueSum := make([]float64, k) // sum of true CVR over each arm's clicks
 	clicks := make([]float64, k)
@@ -395,6 +396,7 @@ func (c *compiled) simulate(ctx context.Context, alloc estimator.AllocationOptio
 			Fit:         estimator.FitOptions{Family: family},
 			Allocation:  alloc,
 			PrevWeights: prev,
+			PrevSettle:  settle,
 			Seed:        splitmix(seed^uint64(step)) | 1,
 		})
 		if err != nil {
@@ -411,6 +413,7 @@ func (c *compiled) simulate(ctx context.Context, alloc estimator.AllocationOptio
 			}
 		}
 		prev = slices.Clone(weights)
+		settle = rep.SettleState
 		out.regret = append(out.regret, regret)
 		out.observed = append(out.observed, obs)
 		out.eventual = append(out.eventual, ev)
@@ -420,8 +423,8 @@ func (c *compiled) simulate(ctx context.Context, alloc estimator.AllocationOptio
 			out.settleAt = int(step - 1)
 			c.cvrAt(end, q)
 			for i, a := range c.sc.Arms {
-				if a.Name == rep.Leader {
-					out.settleRight = withinLoss(q, i, alloc.LossThreshold)
+				if a.Name == rep.Settle.Arm {
+					out.settleRight = withinLoss(q, i, alloc.SettleTolerance)
 				}
 			}
 		}

@@ -11,17 +11,14 @@ import (
 // one seam between this package and the estimator's model, so that a new
 // posterior is checked by replacing this body alone.
 //
-// Today it is what the service computes for an arm: the EM fit of the
-// family (estimator.FitModel), the likelihood posterior of q
-// (estimator.NewLikelihoodPosterior), and the fit's q as the point.
+// It is what the service computes for an arm (estimator.EvaluateExperiment):
+// estimator.ArmPosterior under the default prior (delay parameters
+// integrated out; auto averages the exponential and Weibull families by
+// marginal likelihood), with the posterior median as the point.
 func armPosterior(d *estimator.FitData, family estimator.DelayFamily) (point float64, post estimator.Posterior, err error) {
-	fit, err := estimator.FitModel(d, estimator.FitOptions{Family: family})
-	if err != nil {
-		return 0, nil, fmt.Errorf("fit: %w", err)
-	}
-	lp, err := estimator.NewLikelihoodPosterior(d, fit)
+	p, err := estimator.ArmPosterior(d, family, estimator.Prior{}, nil)
 	if err != nil {
 		return 0, nil, fmt.Errorf("posterior: %w", err)
 	}
-	return fit.Q, lp, nil
+	return p.Median, p, nil
 }

@@ -108,25 +108,38 @@ func truthDelay(r *rand.Rand, t TruthFamily, w float64) (sim.Distribution, error
 // distribution (before conditioning on the window w, seconds) from the
 // estimator's prior for the fitted family: the truth of simulation-based
 // calibration, which is exact only when data are drawn from the prior the
-// posterior assumes. Replace this function when the estimator's prior
-// changes.
+// posterior assumes. It reads estimator.Prior's defaults; replace this
+// function if the estimator's prior changes shape.
 //
-// Today: q ~ Beta(1/2, 1/2) (Jeffreys); an exponential delay's log mean is
-// uniform on [ln w - ln 1e4, ln w + ln 10]; a Weibull delay's log shape is
-// uniform on [ln 0.3, ln 3] and its log scale as the exponential's log
-// mean. The histogram family has no parametric prior: its truth is drawn as
-// a Weibull (which it contains); auto draws the exponential or the Weibull
-// with probability 1/2 each.
+// q ~ Beta(QAlpha, QBeta); the delay scale (the exponential's mean, the
+// Weibull's scale) is log-normal around ScaleMedian windows with log
+// standard deviation ScaleSpread, truncated to [ScaleMin, ScaleMax]
+// windows; the Weibull shape is log-normal around 1 with log standard
+// deviation ShapeSpread, truncated to [ShapeMin, ShapeMax]. The histogram
+// family has no parametric prior: its truth is drawn as a Weibull (which
+// it contains); auto draws the exponential or the Weibull with probability
+// 1/2 each (equal prior odds of the families it averages).
 func priorDraw(r *rand.Rand, family estimator.DelayFamily, w float64) (q float64, delay sim.Distribution) {
-	q = distuv.Beta{Alpha: 0.5, Beta: 0.5, Src: r}.Rand()
-	logScale := uniform(r, math.Log(w)-math.Log(1e4), math.Log(w)+math.Log(10))
+	p := estimator.Prior{}.WithDefaults()
+	q = distuv.Beta{Alpha: p.QAlpha, Beta: p.QBeta, Src: r}.Rand()
+	scale := w * math.Exp(truncatedNormal(r, math.Log(p.ScaleMedian), p.ScaleSpread, math.Log(p.ScaleMin), math.Log(p.ScaleMax)))
 	weibull := family == estimator.FamilyWeibull || family == estimator.FamilyHistogram ||
 		(family == estimator.FamilyAuto && r.Float64() < 0.5)
 	if !weibull {
-		return q, sim.Exponential{Mean: math.Exp(logScale)}
+		return q, sim.Exponential{Mean: scale}
 	}
-	shape := math.Exp(uniform(r, math.Log(0.3), math.Log(3)))
-	return q, sim.Weibull{Shape: shape, Scale: math.Exp(logScale)}
+	shape := math.Exp(truncatedNormal(r, 0, p.ShapeSpread, math.Log(p.ShapeMin), math.Log(p.ShapeMax)))
+	return q, sim.Weibull{Shape: shape, Scale: scale}
+}
+
+// truncatedNormal draws from Normal(mu, sd^2) restricted to [lo, hi] by
+// rejection (the priors keep most of their mass inside their bounds).
+func truncatedNormal(r *rand.Rand, mu, sd, lo, hi float64) float64 {
+	for {
+		if x := mu + sd*r.NormFloat64(); x >= lo && x <= hi {
+			return x
+		}
+	}
 }
 
 // armStart is the simulated start of every arm's traffic (Unix ms).

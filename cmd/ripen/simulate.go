@@ -44,7 +44,7 @@ It prints one table, a row per scenario and policy: the mean cumulative
 regret (expected conversions lost against always playing the best arm)
 with its standard error; the ratio of the policy's mean regret to
 thompson-observed's over the same runs, with its delta-method standard
-error; the share of traffic sent to the best arm; how often the settle rule
+error, and the same against delay-oracle; the share of traffic sent to the best arm; how often the settle rule
 fired and how often it named a wrong arm (one whose true eventual rate was
 more than the settle tolerance below the best arm's at that time); runs whose
 status went from settled back to not settled; the median time of the first

@@ -47,8 +47,13 @@ type simulatePolicy struct {
 	// reference was not simulated or lost nothing.
 	RegretRatio   *float64 `json:"regret_ratio"`
 	RegretRatioSE *float64 `json:"regret_ratio_se"`
-	BestArmShare  float64  `json:"best_arm_share"`
-	SettledRuns   int      `json:"settled_runs"`
+	// RegretRatioOracle and RegretRatioOracleSE are the same against
+	// delay-oracle, the yardstick of what a delay model can reach; null
+	// when it was not simulated.
+	RegretRatioOracle   *float64 `json:"regret_ratio_oracle"`
+	RegretRatioOracleSE *float64 `json:"regret_ratio_oracle_se"`
+	BestArmShare        float64  `json:"best_arm_share"`
+	SettledRuns         int      `json:"settled_runs"`
 	// SettleShare is settled runs over runs; SettledWrong the settled runs
 	// that named an arm more than the settle tolerance below the best.
 	SettleShare  float64 `json:"settle_share"`
@@ -136,27 +141,30 @@ func simulateJSON(res *sim.Result) simulateOutput {
 	for i := range res.Policies {
 		p := &res.Policies[i]
 		ratio, ratioSE := res.RegretRatio(p.Policy, simulateReference)
+		oracle, oracleSE := res.RegretRatio(p.Policy, sim.PolicyDelayOracle)
 		wrongShare := math.NaN()
 		if p.SettledRuns > 0 {
 			wrongShare = float64(p.SettledWrong) / float64(p.SettledRuns)
 		}
 		sp := simulatePolicy{
-			Policy:            p.Policy,
-			RegretMean:        round6(p.RegretMean),
-			RegretSE:          round6(p.RegretSE),
-			RegretRatio:       optional(ratio),
-			RegretRatioSE:     optional(ratioSE),
-			BestArmShare:      round6(p.BestArmShare),
-			SettledRuns:       p.SettledRuns,
-			SettleShare:       round6(float64(p.SettledRuns) / float64(res.Runs)),
-			SettledWrong:      p.SettledWrong,
-			SettledCorrect:    optional(p.SettledCorrect),
-			SettleWrongShare:  optional(wrongShare),
-			SettleHoursMedian: optional(p.SettleHoursMedian),
-			SettleFlipRuns:    p.FlipRuns,
-			SettleFlips:       p.Flips,
-			ObservedCVRMAE:    round6(p.ObservedMAE),
-			EventualCVRMAE:    round6(p.EventualMAE),
+			Policy:              p.Policy,
+			RegretMean:          round6(p.RegretMean),
+			RegretSE:            round6(p.RegretSE),
+			RegretRatio:         optional(ratio),
+			RegretRatioSE:       optional(ratioSE),
+			RegretRatioOracle:   optional(oracle),
+			RegretRatioOracleSE: optional(oracleSE),
+			BestArmShare:        round6(p.BestArmShare),
+			SettledRuns:         p.SettledRuns,
+			SettleShare:         round6(float64(p.SettledRuns) / float64(res.Runs)),
+			SettledWrong:        p.SettledWrong,
+			SettledCorrect:      optional(p.SettledCorrect),
+			SettleWrongShare:    optional(wrongShare),
+			SettleHoursMedian:   optional(p.SettleHoursMedian),
+			SettleFlipRuns:      p.FlipRuns,
+			SettleFlips:         p.Flips,
+			ObservedCVRMAE:      round6(p.ObservedMAE),
+			EventualCVRMAE:      round6(p.EventualMAE),
 		}
 		for _, target := range sim.ErrorHours {
 			at, obs, ev := res.ErrorAt(p, target)
@@ -203,20 +211,21 @@ func printSimulateTable(w io.Writer, results []*sim.Result) error {
 		fmt.Fprintf(w, "scenario %s: %d runs, seed %d, horizon %gh, update every %gh, window %gh, fit %s\n",
 			out.Scenario, out.Runs, out.Seed, out.HorizonHours, out.UpdateHours, out.WindowHours, out.FitFamily)
 	}
-	fmt.Fprintf(w, "\nregret: expected conversions lost; vs %s: ratio of mean regrets over the same runs (± delta-method SE);\n", simulateReference)
+	fmt.Fprintf(w, "\nregret: expected conversions lost; vs %s, vs %s: ratio of mean regrets over the same runs (± delta-method SE);\n", simulateReference, sim.PolicyDelayOracle)
 	fmt.Fprintf(w, "wrong: settles naming an arm more than %g%% below the best; flips: runs whose status left settled again;\n", 100*results[0].SettleTolerance)
 	fmt.Fprintln(w, "CVR MAE observed/eventual at the update nearest each time.")
 	fmt.Fprintln(w)
 	tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', tabwriter.AlignRight)
-	fmt.Fprint(tw, "scenario\tpolicy\tregret\t± SE\tvs "+simulateReference+"\t± SE\tbest-arm share\tsettled\twrong\tflips\tsettle h (median)")
+	fmt.Fprint(tw, "scenario\tpolicy\tregret\t± SE\tvs "+simulateReference+"\t± SE\tvs "+sim.PolicyDelayOracle+"\t± SE\tbest-arm share\tsettled\twrong\tflips\tsettle h (median)")
 	for _, h := range sim.ErrorHours {
 		fmt.Fprintf(tw, "\tMAE %gh", h)
 	}
 	fmt.Fprintln(tw, "\t")
 	for _, out := range outs {
 		for _, p := range out.Policies {
-			fmt.Fprintf(tw, "%s\t%s\t%.1f\t%.1f\t%s\t%s\t%.3f\t%d/%d\t%s\t%d\t%s", out.Scenario, p.Policy, p.RegretMean, p.RegretSE,
-				fmtOptional(p.RegretRatio, "%.2f"), fmtOptional(p.RegretRatioSE, "%.2f"), p.BestArmShare,
+			fmt.Fprintf(tw, "%s\t%s\t%.1f\t%.1f\t%s\t%s\t%s\t%s\t%.3f\t%d/%d\t%s\t%d\t%s", out.Scenario, p.Policy, p.RegretMean, p.RegretSE,
+				fmtOptional(p.RegretRatio, "%.2f"), fmtOptional(p.RegretRatioSE, "%.2f"),
+				fmtOptional(p.RegretRatioOracle, "%.2f"), fmtOptional(p.RegretRatioOracleSE, "%.2f"), p.BestArmShare,
 				p.SettledRuns, out.Runs, fmtCount(p.SettledWrong, p.SettledRuns), p.SettleFlipRuns, fmtOptional(p.SettleHoursMedian, "%.0f"))
 			for _, e := range p.CVRErrorAt {
 				if e.Observed == nil {

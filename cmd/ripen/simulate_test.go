@@ -173,6 +173,7 @@ func TestSimulateBattery(t *testing.T) {
 			Policies []struct {
 				Policy        string   `json:"policy"`
 				RegretRatio   *float64 `json:"regret_ratio"`
+				RatioOracle   *float64 `json:"regret_ratio_oracle"`
 				SettledRuns   int      `json:"settled_runs"`
 				SettledWrong  int      `json:"settled_wrong"`
 				SettleFlipRun *int     `json:"settle_flip_runs"`
@@ -216,6 +217,9 @@ func TestSimulateBattery(t *testing.T) {
 		}
 		if r := *sc.Policies[0].RegretRatio; r != 1 {
 			t.Fatalf("reference's own ratio %v", r)
+		}
+		if o := sc.Policies[1].RatioOracle; o == nil || *o != 1 || sc.Policies[0].RatioOracle == nil {
+			t.Fatalf("ratios to the oracle %v, %v", sc.Policies[0].RatioOracle, o)
 		}
 	}
 	if len(doc.Pooled) != 2 {

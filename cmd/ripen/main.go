@@ -31,7 +31,7 @@ func newRootCmd() *cobra.Command {
 		SilenceUsage:  true,
 		SilenceErrors: true,
 	}
-	root.AddCommand(newFitCmd(), newSimulateCmd(), newRunCmd(), newDevbrokerCmd(), newStateCmd(), newInspectCmd(),
+	root.AddCommand(newFitCmd(), newSimulateCmd(), newCalibrateCmd(), newRunCmd(), newDevbrokerCmd(), newStateCmd(), newInspectCmd(),
 		newBenchCmd(), newDemoCmd(), newReportCmd(), newReplayCmd())
 	return root
 }

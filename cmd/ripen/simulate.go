@@ -4,10 +4,10 @@ import (
 	"encoding/json"
 	"fmt"
 	"io"
-	"math"
 	"os"
+	"path/filepath"
+	"sort"
 	"strings"
-	"text/tabwriter"
 	"time"
 
 	"github.com/spf13/cobra"
@@ -19,97 +19,103 @@ import (
 
 // simulateFlags are the options of `ripen simulate`.
 type simulateFlags struct {
-	scenario string
-	policies string
-	runs     int
-	format   string
-	report   string
-	seed     uint64
+	scenarios []string
+	policies  string
+	runs      int
+	format    string
+	report    string
+	seed      uint64
 }
 
 func newSimulateCmd() *cobra.Command {
 	var f simulateFlags
 	cmd := &cobra.Command{
-		Use:   "simulate --scenario FILE",
-		Short: "Simulate allocation policies closed-loop on a scenario and compare their regret",
-		Long: `simulate reads a scenario (YAML: traffic, arms with their true eventual
+		Use:   "simulate --scenario FILE|DIR [--scenario ...]",
+		Short: "Simulate allocation policies closed-loop on scenarios and compare their regret and settle errors",
+		Long: `simulate reads scenarios (YAML: traffic, arms with their true eventual
 conversion rates and delay distributions, change points, update interval),
-and runs every policy closed-loop: traffic follows the policy's current
-weights, conversions are revealed after their delays, and the arms are
-refitted on the update interval with the service's estimator. Runs are
+and runs every policy closed-loop on each: traffic follows the policy's
+current weights, conversions are revealed after their delays, and the arms
+are refitted on the update interval with the service's estimator. Runs are
 seeded and spread over all cores; the output is the same for the same seed.
+--scenario may be repeated and may name a directory (every *.yaml in it).
 
-Per policy it prints the mean cumulative regret (expected conversions lost
-against always playing the best arm) with its standard error, the share of
-traffic sent to the best arm, how often and when the settle rule fired and
-whether it picked the best arm, and the error of the observed and eventual
-conversion rates. --report DIR also writes DIR/index.html with charts.`,
+It prints one table, a row per scenario and policy: the mean cumulative
+regret (expected conversions lost against always playing the best arm)
+with its standard error; the ratio of the policy's mean regret to
+thompson-observed's over the same runs, with its delta-method standard
+error, and the same against delay-oracle; the share of traffic sent to the best arm; how often the settle rule
+fired and how often it named a wrong arm (one whose true eventual rate was
+more than the settle tolerance below the best arm's at that time); runs whose
+status went from settled back to not settled; the median time of the first
+settle; and the mean absolute error of the observed and eventual CVR at the
+updates nearest 12, 24 and 48 hours. A pooled line per policy gives the
+settle errors over all scenarios with a one-sided 95% upper bound.
+
+The policy delay-oracle is a simulation-only yardstick: it knows every
+arm's true delay distribution (only the eventual rate is unknown) and
+samples from the exact posterior under the same burn-in, guardrails and
+settle rule. --report DIR (one scenario) also writes DIR/index.html with
+charts.`,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
 			return runSimulate(cmd, f)
 		},
 	}
 	fl := cmd.Flags()
-	fl.StringVar(&f.scenario, "scenario", "", "scenario file, YAML (required)")
-	fl.StringVar(&f.policies, "policies", strings.Join(estimator.PolicyNames(), ","), "comma-separated policies: "+strings.Join(estimator.PolicyNames(), ", "))
-	fl.IntVar(&f.runs, "runs", 0, "seeded runs per policy (0: the scenario's)")
+	fl.StringArrayVar(&f.scenarios, "scenario", nil, "scenario file (YAML) or directory of them; repeatable (required)")
+	fl.StringVar(&f.policies, "policies", strings.Join(sim.PolicyNames(), ","), "comma-separated policies: "+strings.Join(sim.PolicyNames(), ", "))
+	fl.IntVar(&f.runs, "runs", 0, "seeded runs per policy (0: each scenario's)")
 	fl.StringVar(&f.format, "format", "table", "output format: table or json")
-	fl.StringVar(&f.report, "report", "", "write an HTML report with charts to DIR/index.html")
-	fl.Uint64Var(&f.seed, "seed", 0, "base seed (0: the scenario's)")
+	fl.StringVar(&f.report, "report", "", "write an HTML report with charts to DIR/index.html (one scenario only)")
+	fl.Uint64Var(&f.seed, "seed", 0, "base seed (0: each scenario's)")
 	_ = cmd.MarkFlagRequired("scenario")
 	return cmd
 }
 
-// simulateOutput is the JSON document `ripen simulate --format json` prints.
-type simulateOutput struct {
-	Scenario     string           `json:"scenario"`
-	Description  string           `json:"description,omitempty"`
-	Runs         int              `json:"runs"`
-	Seed         uint64           `json:"seed"`
-	HorizonHours float64          `json:"horizon_hours"`
-	UpdateHours  float64          `json:"update_interval_hours"`
-	WindowHours  float64          `json:"window_hours"`
-	FitFamily    string           `json:"fit_family"`
-	Arms         []simulateArm    `json:"arms"`
-	Policies     []simulatePolicy `json:"policies"`
-}
-
-type simulateArm struct {
-	Arm string  `json:"arm"`
-	CVR float64 `json:"cvr"`
-}
-
-type simulatePolicy struct {
-	Policy       string  `json:"policy"`
-	RegretMean   float64 `json:"regret_mean"`
-	RegretSE     float64 `json:"regret_se"`
-	BestArmShare float64 `json:"best_arm_share"`
-	SettledRuns  int     `json:"settled_runs"`
-	// SettledCorrect and SettleHoursMedian are null when no run settled.
-	SettledCorrect    *float64           `json:"settled_correct"`
-	SettleHoursMedian *float64           `json:"settle_hours_median"`
-	ObservedCVRMAE    float64            `json:"observed_cvr_mae"`
-	EventualCVRMAE    float64            `json:"eventual_cvr_mae"`
-	CVRError          []simulateCVRError `json:"cvr_error"`
-}
-
-// simulateCVRError is the mean absolute error of the observed and eventual
-// CVR (against the true CVR of the arms' clicks) at one update time.
-type simulateCVRError struct {
-	Hours    float64 `json:"hours"`
-	Observed float64 `json:"observed"`
-	Eventual float64 `json:"eventual"`
-}
-
-// round6 rounds to six decimals so that the JSON stays readable.
-func round6(x float64) float64 { return math.Round(x*1e6) / 1e6 }
-
-func optional(x float64) *float64 {
-	if math.IsNaN(x) {
-		return nil
+// loadScenarios reads every scenario the --scenario values name: a file, or
+// a directory whose *.yaml files are read in name order. Scenario names
+// must be unique.
+func loadScenarios(paths []string) ([]*sim.Scenario, error) {
+	var files []string
+	for _, p := range paths {
+		st, err := os.Stat(p)
+		if err != nil {
+			return nil, fmt.Errorf("--scenario: %w", err)
+		}
+		if !st.IsDir() {
+			files = append(files, p)
+			continue
+		}
+		found, err := filepath.Glob(filepath.Join(p, "*.yaml"))
+		if err != nil {
+			return nil, fmt.Errorf("--scenario %s: %w", p, err)
+		}
+		if len(found) == 0 {
+			return nil, fmt.Errorf("--scenario %s: no *.yaml files in the directory", p)
+		}
+		sort.Strings(found)
+		files = append(files, found...)
 	}
-	v := round6(x)
-	return &v
+	var out []*sim.Scenario
+	seen := make(map[string]string)
+	for _, name := range files {
+		file, err := os.Open(name)
+		if err != nil {
+			return nil, fmt.Errorf("--scenario: %w", err)
+		}
+		sc, err := sim.ParseScenario(file)
+		file.Close()
+		if err != nil {
+			return nil, fmt.Errorf("--scenario %s: %w", name, err)
+		}
+		if prev, ok := seen[sc.Name]; ok {
+			return nil, fmt.Errorf("--scenario %s: scenario name %q already used by %s", name, sc.Name, prev)
+		}
+		seen[sc.Name] = name
+		out = append(out, sc)
+	}
+	return out, nil
 }
 
 func runSimulate(cmd *cobra.Command, f simulateFlags) error {
@@ -124,53 +130,75 @@ func runSimulate(cmd *cobra.Command, f simulateFlags) error {
 		if p = strings.TrimSpace(p); p == "" {
 			continue
 		}
-		if _, err := estimator.ParsePolicy(p); err != nil {
+		if err := sim.CheckPolicy(p); err != nil {
 			return fmt.Errorf("--policies: %w", err)
 		}
 		policies = append(policies, p)
 	}
 	if len(policies) == 0 {
-		return fmt.Errorf("--policies: none given (valid: %s)", strings.Join(estimator.PolicyNames(), ", "))
+		return fmt.Errorf("--policies: none given (valid: %s)", strings.Join(sim.PolicyNames(), ", "))
 	}
-	file, err := os.Open(f.scenario)
-	if err != nil {
-		return fmt.Errorf("--scenario: %w", err)
-	}
-	sc, err := sim.ParseScenario(file)
-	file.Close()
-	if err != nil {
-		return fmt.Errorf("--scenario %s: %w", f.scenario, err)
-	}
-
-	opts := sim.Options{Policies: policies, Runs: f.runs, Seed: f.seed}
-	errOut := cmd.ErrOrStderr()
-	bar := newProgressBar(errOut)
-	if bar != nil {
-		opts.Progress = bar.update
-	}
-	start := time.Now()
-	res, err := sim.Run(cmd.Context(), *sc, opts)
-	if bar != nil {
-		bar.finish()
-	}
+	scenarios, err := loadScenarios(f.scenarios)
 	if err != nil {
 		return err
+	}
+	if f.report != "" && len(scenarios) != 1 {
+		return fmt.Errorf("--report: needs exactly one scenario, got %d", len(scenarios))
+	}
+
+	errOut := cmd.ErrOrStderr()
+	total := 0
+	for _, sc := range scenarios {
+		runs := sc.Runs
+		if f.runs != 0 {
+			runs = f.runs
+		}
+		total += runs * len(policies)
+	}
+	bar := newProgressBar(errOut, "simulating")
+	start := time.Now()
+	var results []*sim.Result
+	for _, sc := range scenarios {
+		opts := sim.Options{Policies: policies, Runs: f.runs, Seed: f.seed}
+		if bar != nil {
+			before := 0
+			for _, r := range results {
+				before += r.Runs * len(r.Policies)
+			}
+			opts.Progress = func(done, _ int) { bar.update(before+done, total) }
+		}
+		t0 := time.Now()
+		res, err := sim.Run(cmd.Context(), *sc, opts)
+		if err != nil {
+			if bar != nil {
+				bar.finish()
+			}
+			return fmt.Errorf("scenario %s: %w", sc.Name, err)
+		}
+		if bar != nil {
+			bar.finish()
+		}
+		fmt.Fprintf(errOut, "ripen simulate: %s: %d policies x %d runs in %.1fs\n", sc.Name, len(res.Policies), res.Runs, time.Since(t0).Seconds())
+		results = append(results, res)
 	}
 	elapsed := time.Since(start)
 
-	out := simulateJSON(res)
 	w := cmd.OutOrStdout()
 	if f.format == "json" {
+		var doc any = simulateJSON(results[0])
+		if len(results) > 1 {
+			doc = simulateBatteryJSON(results)
+		}
 		enc := json.NewEncoder(w)
 		enc.SetIndent("", "  ")
-		if err := enc.Encode(out); err != nil {
+		if err := enc.Encode(doc); err != nil {
 			return fmt.Errorf("write json: %w", err)
 		}
-	} else if err := printSimulateTable(w, out); err != nil {
+	} else if err := printSimulateTable(w, results); err != nil {
 		return err
 	}
 	if f.report != "" {
-		page, err := simulateReport(res, out)
+		page, err := simulateReport(results[0], simulateJSON(results[0]))
 		if err != nil {
 			return err
 		}
@@ -178,67 +206,8 @@ func runSimulate(cmd *cobra.Command, f simulateFlags) error {
 			return fmt.Errorf("--report: %w", err)
 		}
 	}
-	fmt.Fprintf(errOut, "ripen simulate: %d policies x %d runs in %.1fs\n", len(res.Policies), res.Runs, elapsed.Seconds())
-	return nil
-}
-
-// simulateJSON summarises a result for output.
-func simulateJSON(res *sim.Result) simulateOutput {
-	sc := res.Scenario
-	out := simulateOutput{
-		Scenario:     sc.Name,
-		Description:  sc.Description,
-		Runs:         res.Runs,
-		Seed:         res.Seed,
-		HorizonHours: sc.Horizon.Hours(),
-		UpdateHours:  sc.UpdateInterval.Hours(),
-		WindowHours:  sc.Window.Hours(),
-		FitFamily:    sc.FitFamily,
-	}
-	for _, a := range sc.Arms {
-		out.Arms = append(out.Arms, simulateArm{Arm: a.Name, CVR: a.CVR})
-	}
-	for _, p := range res.Policies {
-		sp := simulatePolicy{
-			Policy:            p.Policy,
-			RegretMean:        round6(p.RegretMean),
-			RegretSE:          round6(p.RegretSE),
-			BestArmShare:      round6(p.BestArmShare),
-			SettledRuns:       p.SettledRuns,
-			SettledCorrect:    optional(p.SettledCorrect),
-			SettleHoursMedian: optional(p.SettleHoursMedian),
-			ObservedCVRMAE:    round6(p.ObservedMAE),
-			EventualCVRMAE:    round6(p.EventualMAE),
-		}
-		for t, h := range res.Hours {
-			if math.IsNaN(p.ObservedError[t]) {
-				continue
-			}
-			sp.CVRError = append(sp.CVRError, simulateCVRError{Hours: round6(h), Observed: round6(p.ObservedError[t]), Eventual: round6(p.EventualError[t])})
-		}
-		out.Policies = append(out.Policies, sp)
-	}
-	return out
-}
-
-func fmtOptional(x *float64, format string) string {
-	if x == nil {
-		return "-"
-	}
-	return fmt.Sprintf(format, *x)
-}
-
-func printSimulateTable(w io.Writer, out simulateOutput) error {
-	fmt.Fprintf(w, "scenario %s: %d runs, seed %d, horizon %gh, update every %gh, window %gh, fit %s\n\n",
-		out.Scenario, out.Runs, out.Seed, out.HorizonHours, out.UpdateHours, out.WindowHours, out.FitFamily)
-	tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', tabwriter.AlignRight)
-	fmt.Fprintln(tw, "policy\tregret\t± SE\tbest-arm share\tsettled\tcorrect\tsettle h (median)\tobserved CVR MAE\teventual CVR MAE\t")
-	for _, p := range out.Policies {
-		fmt.Fprintf(tw, "%s\t%.1f\t%.1f\t%.3f\t%d/%d\t%s\t%s\t%.4f\t%.4f\t\n", p.Policy, p.RegretMean, p.RegretSE, p.BestArmShare,
-			p.SettledRuns, out.Runs, fmtOptional(p.SettledCorrect, "%.2f"), fmtOptional(p.SettleHoursMedian, "%.0f"), p.ObservedCVRMAE, p.EventualCVRMAE)
-	}
-	if err := tw.Flush(); err != nil {
-		return fmt.Errorf("write table: %w", err)
+	if len(results) > 1 {
+		fmt.Fprintf(errOut, "ripen simulate: %d scenarios in %.1fs\n", len(results), elapsed.Seconds())
 	}
 	return nil
 }
@@ -330,13 +299,14 @@ func simulateReport(res *sim.Result, out simulateOutput) (report.Page, error) {
 
 // progressBar draws a one-line progress bar on a terminal.
 type progressBar struct {
-	w    io.Writer
-	last int
+	w     io.Writer
+	label string
+	last  int
 }
 
-// newProgressBar returns a bar drawing on w, or nil unless w is a
-// terminal (so tests and pipes never see one).
-func newProgressBar(w io.Writer) *progressBar {
+// newProgressBar returns a bar labelled label drawing on w, or nil unless
+// w is a terminal (so tests and pipes never see one).
+func newProgressBar(w io.Writer, label string) *progressBar {
 	f, ok := w.(*os.File)
 	if !ok {
 		return nil
@@ -345,7 +315,7 @@ func newProgressBar(w io.Writer) *progressBar {
 	if err != nil || st.Mode()&os.ModeCharDevice == 0 {
 		return nil
 	}
-	return &progressBar{w: w, last: -1}
+	return &progressBar{w: w, label: label, last: -1}
 }
 
 func (b *progressBar) update(done, total int) {
@@ -355,7 +325,7 @@ func (b *progressBar) update(done, total int) {
 		return
 	}
 	b.last = n
-	fmt.Fprintf(b.w, "\rsimulating [%s%s] %d/%d", strings.Repeat("=", n), strings.Repeat(" ", width-n), done, total)
+	fmt.Fprintf(b.w, "\r%s [%s%s] %d/%d", b.label, strings.Repeat("=", n), strings.Repeat(" ", width-n), done, total)
 }
 
 func (b *progressBar) finish() { fmt.Fprint(b.w, "\r\033[K") }

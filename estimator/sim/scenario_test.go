@@ -133,3 +133,30 @@ func medianOf(d Distribution, hi float64) float64 {
 	}
 	return (lo + hi) / 2
 }
+
+// TestBatteryScenarios: the scenarios of testdata/scenarios/battery parse,
+// fit the service's default family and run for at least three attribution
+// windows, so a settle rule based on matured clicks has room to fire.
+func TestBatteryScenarios(t *testing.T) {
+	files, err := filepath.Glob(filepath.Join("..", "..", "testdata", "scenarios", "battery", "*.yaml"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(files) != 6 {
+		t.Fatalf("%d battery scenarios, want 6", len(files))
+	}
+	for _, name := range files {
+		f, err := os.Open(name)
+		if err != nil {
+			t.Fatal(err)
+		}
+		sc, err := ParseScenario(f)
+		f.Close()
+		if err != nil {
+			t.Fatalf("%s: %v", name, err)
+		}
+		if sc.FitFamily != "auto" || sc.Horizon.D() < 3*sc.Window.D() {
+			t.Errorf("%s: fit %s, horizon %v, window %v", name, sc.FitFamily, sc.Horizon, sc.Window)
+		}
+	}
+}

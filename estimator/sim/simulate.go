@@ -17,7 +17,8 @@ import (
 // Options controls Run.
 type Options struct {
 	// Policies are the allocation policies to simulate, by name (see
-	// estimator.PolicyNames). Default: all of them.
+	// PolicyNames: the service's policies and PolicyDelayOracle). Default:
+	// all of them.
 	Policies []string
 	// Runs overrides the scenario's number of runs. Default: 0 (the
 	// scenario's).
@@ -44,6 +45,10 @@ type Result struct {
 	// Runs and Seed are the number of runs per policy and the base seed.
 	Runs int
 	Seed uint64
+	// SettleTolerance is the simulated service's settle tolerance
+	// (estimator.AllocationOptions): a settle naming an arm within it of the
+	// best counts as right.
+	SettleTolerance float64
 	// Arms are the arm names in scenario order.
 	Arms []string
 	// Hours are the update times, in hours since the start; every series
@@ -80,12 +85,19 @@ type PolicyResult struct {
 	// the update interval ending at update time t.
 	Weights [][]float64
 	// SettledRuns counts the runs in which the settle rule fired at some
-	// update; SettledCorrect is the share of those whose leader at the first
-	// settle was the best arm at that time (NaN when none settled), and
-	// SettleHoursMedian the median time of the first settle (NaN when none).
+	// update. SettledWrong counts those whose leader at the first settle
+	// was wrong: its true eventual CVR at that time below (1 -
+	// SettleTolerance) times the best arm's (an arm within the tolerance of
+	// the best counts as right). SettledCorrect is the share of settled
+	// runs that were right (NaN when none settled), and SettleHoursMedian
+	// the median time of the first settle (NaN when none).
 	SettledRuns       int
+	SettledWrong      int
 	SettledCorrect    float64
 	SettleHoursMedian float64
+	// FlipRuns counts the runs whose status went from settled back to not
+	// settled at least once; Flips counts every such change over all runs.
+	FlipRuns, Flips int
 	// ObservedCVR[i][t] and EventualCVR[i][t] are the means over runs of arm
 	// i's observed CVR (conversions/clicks) and fitted eventual CVR at
 	// update time t; PooledTrueCVR[i][t] is the mean over runs of the true
@@ -119,6 +131,7 @@ type runOutput struct {
 	clicks      float64
 	settleAt    int // update index of the first settle, -1 if never
 	settleRight bool
+	flips       int         // changes from settled to not settled
 	observed    [][]float64 // [t][arm]
 	eventual    [][]float64
 	pooled      [][]float64 // pooled true CVR, NaN when the arm has no clicks
@@ -135,13 +148,16 @@ func Run(ctx context.Context, sc Scenario, o Options) (*Result, error) {
 	}
 	names := o.Policies
 	if len(names) == 0 {
-		names = estimator.PolicyNames()
+		names = PolicyNames()
 	}
 	policies := make([]estimator.Policy, len(names))
 	for i, n := range names {
+		if n == PolicyDelayOracle {
+			continue // one per run: it holds the run's posteriors
+		}
 		p, err := estimator.ParsePolicy(n)
 		if err != nil {
-			return nil, fmt.Errorf("simulate: %w", err)
+			return nil, fmt.Errorf("simulate: %w", CheckPolicy(n))
 		}
 		policies[i] = p
 	}
@@ -187,7 +203,12 @@ func Run(ctx context.Context, sc Scenario, o Options) (*Result, error) {
 				p, r := j/runs, j%runs
 				a := alloc
 				a.Policy = policies[p]
-				outs[j], errs[j] = c.simulate(ctx, a, family, RunSeed(seed, r), r == 0)
+				var oracle *delayOracle
+				if a.Policy == nil {
+					oracle = newDelayOracle(c)
+					a.Policy = oracle
+				}
+				outs[j], errs[j] = c.simulate(ctx, a, oracle, family, RunSeed(seed, r), r == 0)
 				if o.Progress != nil {
 					mu.Lock()
 					done++
@@ -216,7 +237,7 @@ feed:
 		}
 	}
 
-	res := &Result{Scenario: c.sc, Runs: runs, Seed: seed, Arms: c.sc.ArmNames()}
+	res := &Result{Scenario: c.sc, Runs: runs, Seed: seed, SettleTolerance: alloc.SettleTolerance, Arms: c.sc.ArmNames()}
 	q := make([]float64, c.k)
 	for t := int64(1); ; t++ {
 		at := min(t*c.updateMs, c.horizonMs)
@@ -252,6 +273,12 @@ func splitmix(x uint64) uint64 {
 	x = (x ^ (x >> 30)) * 0xbf58476d1ce4e5b9
 	x = (x ^ (x >> 27)) * 0x94d049bb133111eb
 	return x ^ (x >> 31)
+}
+
+// withinLoss reports whether arm i's rate q[i] is at least (1 - loss)
+// times the best rate: naming it is right within the stated loss.
+func withinLoss(q []float64, i int, loss float64) bool {
+	return q[i] >= (1-loss)*slices.Max(q)
 }
 
 func argmax(x []float64) int {
@@ -292,7 +319,10 @@ func (h *convHeap) Pop() any {
 // current weights, conversions are revealed once their time has passed,
 // and at every update the arms' states are advanced and the experiment is
 // evaluated exactly as the service does.
-func (c *compiled) simulate(ctx context.Context, alloc estimator.AllocationOptions, family estimator.DelayFamily, seed uint64, trace bool) (runOutput, error) {
+//
+// oracle, when not nil, is alloc.Policy: its posteriors are computed from
+// the arms' states before each evaluation.
+func (c *compiled) simulate(ctx context.Context, alloc estimator.AllocationOptions, oracle *delayOracle, family estimator.DelayFamily, seed uint64, trace bool) (runOutput, error) {
 	k := c.k
 	layout := estimator.Layout{Window: c.sc.Window.D()}
 	states := make([]*estimator.ArmState, k)
@@ -317,6 +347,7 @@ func (c *compiled) simulate(ctx context.Context, alloc estimator.AllocationOptio
 	st := newStream(c, seed)
 	cl := st.next()
 	var regret float64
+	settled := false
 	q := make([]float64, k)
 	for step := int64(1); ; step++ {
 		if err := ctx.Err(); err != nil {
@@ -347,6 +378,11 @@ func (c *compiled) simulate(ctx context.Context, alloc estimator.AllocationOptio
 			states[cv.arm].AddConversion(Start+cv.click, Start+cv.at)
 			if trace {
 				delays[cv.arm] = append(delays[cv.arm], float64(cv.at-cv.click)/1000)
+			}
+		}
+		if oracle != nil {
+			if err := oracle.update(states); err != nil {
+				return runOutput{}, fmt.Errorf("update at %.1fh: %w", float64(end)/3.6e6, err)
 			}
 		}
 		arms := make([]estimator.ArmData, k)
@@ -382,16 +418,20 @@ func (c *compiled) simulate(ctx context.Context, alloc estimator.AllocationOptio
 		out.observed = append(out.observed, obs)
 		out.eventual = append(out.eventual, ev)
 		out.pooled = append(out.pooled, pooled)
-		if rep.Status == estimator.StatusSettled && out.settleAt < 0 {
+		settledNow := rep.Status == estimator.StatusSettled
+		if settledNow && out.settleAt < 0 {
 			out.settleAt = int(step - 1)
 			c.cvrAt(end, q)
-			best := slices.Max(q)
 			for i, a := range c.sc.Arms {
 				if a.Name == rep.Settle.Arm {
-					out.settleRight = q[i] >= (1-alloc.SettleTolerance)*best
+					out.settleRight = withinLoss(q, i, alloc.SettleTolerance)
 				}
 			}
 		}
+		if settled && !settledNow {
+			out.flips++
+		}
+		settled = settledNow
 		if end == c.horizonMs {
 			break
 		}
@@ -472,8 +512,13 @@ func aggregate(name string, outs []runOutput, steps, k int, hours []float64) Pol
 				right++
 			}
 		}
+		if o.flips > 0 {
+			pr.FlipRuns++
+			pr.Flips += o.flips
+		}
 	}
 	pr.SettleHoursMedian = Median(settleHours)
+	pr.SettledWrong = pr.SettledRuns - right
 	if pr.SettledRuns > 0 {
 		pr.SettledCorrect = float64(right) / float64(pr.SettledRuns)
 	}

@@ -16,11 +16,16 @@
 // estimator.ArmState in canonical form at the stored watermark, whatever the
 // bucket levels the deltas were written at.
 //
+// An arm hash holds a compact base and one record per Apply since the
+// last compaction (state/armformat.go); Apply compacts an arm whose
+// records pass Options.CompactFields or Options.CompactBytes, so the hash
+// stays small whatever the traffic and the refit period.
+//
 // A conversion's delta can land before its click's (they are consumed from
 // different partitions); Load then holds the conversion back (Experiment.Held)
-// until the click lands. Compact rewrites an arm hash into canonical form
-// with a compare-and-set script, keeping held conversions, so it is safe
-// beside concurrent writers.
+// until the click lands. Compact rewrites an arm hash into its base at the
+// stored watermark with a compare-and-set script, keeping held
+// conversions, so it is safe beside concurrent writers.
 //
 // Errors are *Error values that say whether the failure is worth retrying
 // (IsRetriable); the refusals ErrFenced, ErrOverlap and ErrLayoutMismatch

@@ -234,67 +234,6 @@ func flatHash(v any) (map[string]string, error) {
 	return h, nil
 }
 
-// armCounts are the counts of an arm hash: as parsed, in whatever
-// (possibly finer than canonical) buckets they were written, or, from
-// canonicalize, re-keyed to canonical buckets at one watermark.
-type armCounts struct {
-	clicks, converted  map[estimator.BucketKey]uint64
-	maturedClicks      uint64
-	maturedConversions uint64
-	delays             []uint64
-	delayCount         uint64
-	delaySumMs         uint64
-}
-
-// parseArmHash reads an arm hash; see the package documentation for its
-// fields.
-func parseArmHash(h map[string]string, nbins int) (armCounts, error) {
-	a := armCounts{
-		clicks:    make(map[estimator.BucketKey]uint64),
-		converted: make(map[estimator.BucketKey]uint64),
-		delays:    make([]uint64, nbins),
-	}
-	for f, v := range h {
-		n, err := strconv.ParseInt(v, 10, 64)
-		if err != nil || n < 0 {
-			return a, fmt.Errorf("%w: field %s=%q", ErrCorrupt, f, v)
-		}
-		u := uint64(n)
-		switch {
-		case f == "mc":
-			a.maturedClicks = u
-		case f == "mv":
-			a.maturedConversions = u
-		case f == "dn":
-			a.delayCount = u
-		case f == "ds":
-			a.delaySumMs = u
-		case strings.HasPrefix(f, "d:"):
-			i, err := strconv.Atoi(f[2:])
-			if err != nil || i < 0 || i >= nbins {
-				return a, fmt.Errorf("%w: delay field %q of %d bins", ErrCorrupt, f, nbins)
-			}
-			a.delays[i] = u
-		case strings.HasPrefix(f, "b:"), strings.HasPrefix(f, "v:"):
-			lv, idx, ok := strings.Cut(f[2:], ":")
-			level, err1 := strconv.ParseUint(lv, 10, 8)
-			index, err2 := strconv.ParseInt(idx, 10, 64)
-			if !ok || err1 != nil || err2 != nil {
-				return a, fmt.Errorf("%w: bucket field %q", ErrCorrupt, f)
-			}
-			k := estimator.BucketKey{Level: uint8(level), Index: index}
-			if f[0] == 'b' {
-				a.clicks[k] += u
-			} else {
-				a.converted[k] += u
-			}
-		default:
-			return a, fmt.Errorf("%w: unknown arm field %q", ErrCorrupt, f)
-		}
-	}
-	return a, nil
-}
-
 // canonicalize re-keys an arm hash to canonical buckets at wm.
 //
 // Click and conversion counts of one click time may sit in buckets of
@@ -369,31 +308,6 @@ func (c armCounts) state(l estimator.Layout, wm int64) (st *estimator.ArmState, 
 		return nil, 0, fmt.Errorf("%w: %w", ErrCorrupt, err)
 	}
 	return st, held, nil
-}
-
-// fields is the arm hash holding exactly c's counts, zero fields left out.
-// Held-back conversions are kept.
-func (c armCounts) fields() map[string]string {
-	h := make(map[string]string)
-	put := func(f string, n uint64) {
-		if n > 0 {
-			h[f] = strconv.FormatUint(n, 10)
-		}
-	}
-	for k, n := range c.clicks {
-		put(bucketField('b', k), n)
-	}
-	for k, n := range c.converted {
-		put(bucketField('v', k), n)
-	}
-	put("mc", c.maturedClicks)
-	put("mv", c.maturedConversions)
-	for i, n := range c.delays {
-		put("d:"+strconv.Itoa(i), n)
-	}
-	put("dn", c.delayCount)
-	put("ds", c.delaySumMs)
-	return h
 }
 
 // CompactResult says what Compact did.

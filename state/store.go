@@ -18,6 +18,8 @@ const (
 	DefaultOrphanTTL        = time.Hour
 	DefaultMaxParkedOrphans = 100_000
 	DefaultCompactAttempts  = 8
+	DefaultCompactFields    = 64
+	DefaultCompactBytes     = 16 << 10
 )
 
 // Options configure a Store.
@@ -40,6 +42,13 @@ type Options struct {
 	// CompactAttempts bounds the compare-and-set attempts of one Compact
 	// call. Default: 8.
 	CompactAttempts int
+	// CompactFields and CompactBytes bound an arm hash between
+	// compactions: Apply compacts an arm whose hash has more than
+	// CompactFields fields, or whose records (one per Apply since the last
+	// compaction) hold more than CompactBytes bytes. Defaults: 64 and
+	// 16384.
+	CompactFields int
+	CompactBytes  int
 }
 
 // WithDefaults returns o with every zero field set to its default.
@@ -58,6 +67,12 @@ func (o Options) WithDefaults() Options {
 	}
 	if o.CompactAttempts == 0 {
 		o.CompactAttempts = DefaultCompactAttempts
+	}
+	if o.CompactFields == 0 {
+		o.CompactFields = DefaultCompactFields
+	}
+	if o.CompactBytes == 0 {
+		o.CompactBytes = DefaultCompactBytes
 	}
 	return o
 }
@@ -80,6 +95,12 @@ func (o Options) Validate() error {
 	}
 	if o.CompactAttempts < 1 {
 		errs = append(errs, fmt.Errorf("state options: compact attempts %d must be at least 1", o.CompactAttempts))
+	}
+	if o.CompactFields < 4 {
+		errs = append(errs, fmt.Errorf("state options: compact fields %d must be at least 4", o.CompactFields))
+	}
+	if o.CompactBytes < 1 {
+		errs = append(errs, fmt.Errorf("state options: compact bytes %d must be at least 1", o.CompactBytes))
 	}
 	return errors.Join(errs...)
 }

@@ -20,6 +20,7 @@ const (
 	DefaultCompactAttempts  = 8
 	DefaultCompactFields    = 64
 	DefaultCompactBytes     = 16 << 10
+	DefaultIndexGenerations = 4
 )
 
 // Options configure a Store.
@@ -49,6 +50,12 @@ type Options struct {
 	// 16384.
 	CompactFields int
 	CompactBytes  int
+	// IndexGenerations is the number of click index generations per
+	// horizon (the longest attribution window) when an index is created:
+	// more generations keep entries closer to their window (an entry is
+	// gone at most one generation after it) but make a conversion look in
+	// more of them. Default: 4.
+	IndexGenerations int
 }
 
 // WithDefaults returns o with every zero field set to its default.
@@ -73,6 +80,9 @@ func (o Options) WithDefaults() Options {
 	}
 	if o.CompactBytes == 0 {
 		o.CompactBytes = DefaultCompactBytes
+	}
+	if o.IndexGenerations == 0 {
+		o.IndexGenerations = DefaultIndexGenerations
 	}
 	return o
 }
@@ -102,6 +112,9 @@ func (o Options) Validate() error {
 	if o.CompactBytes < 1 {
 		errs = append(errs, fmt.Errorf("state options: compact bytes %d must be at least 1", o.CompactBytes))
 	}
+	if o.IndexGenerations < 1 || o.IndexGenerations > 1000 {
+		errs = append(errs, fmt.Errorf("state options: index generations %d must be in [1, 1000]", o.IndexGenerations))
+	}
 	return errors.Join(errs...)
 }
 
@@ -115,6 +128,8 @@ type Store struct {
 	// registered holds the experiments this Store has added to the
 	// discovery set, to save a round trip per Apply.
 	registered sync.Map
+	// ix caches the click index descriptor and dictionary.
+	ix indexState
 }
 
 // New returns a Store on rdb (a *redis.Client, *redis.ClusterClient or any

@@ -401,15 +401,17 @@ func (s *Store) IndexClicks(ctx context.Context, clicks []ClickRecord) ([]ClickR
 	w := &clickWrite{s: s, v: v, clicks: clicks, out: out, first: make(map[string]int, len(clicks))}
 	for i, c := range clicks {
 		g := v.gen(c.TS)
-		if g <= v.retired {
-			out[i].Status = ClickExpired
-			continue
-		}
 		if j, ok := w.first[c.ClickID]; ok {
 			w.later = append(w.later, [2]int{i, j})
 			continue
 		}
 		w.first[c.ClickID] = i
+		if g <= v.retired {
+			// Not indexed, but it still takes a conversion parked for it.
+			out[i].Status = ClickExpired
+			w.todo = append(w.todo, pendingClick{i: i, ref: refOf(c.ClickID), gen: g, settled: true, expired: true})
+			continue
+		}
 		w.todo = append(w.todo, pendingClick{i: i, ref: refOf(c.ClickID), gen: g})
 		if !containsInt64(gens, g) {
 			gens = append(gens, g)
@@ -498,6 +500,8 @@ type pendingClick struct {
 	// a duplicate of an entry in another generation, or a click the
 	// first layout holds (see legacyindex.go); nothing is written for it.
 	settled bool
+	// expired is set for a click of a retired generation (ClickExpired).
+	expired bool
 	// setnx is the write; hasOrphan says the group's orphans hash had the
 	// click's field after it.
 	setnx     *redis.BoolCmd
@@ -532,6 +536,9 @@ func (w *clickWrite) prepare(ctx context.Context, gens []int64) error {
 	est := map[int64]float64{}
 	lo, hi, cnt := map[int64]int64{}, map[int64]int64{}, map[int64]int{}
 	for _, p := range w.todo {
+		if p.expired {
+			continue
+		}
 		ts := w.clicks[p.i].TS
 		if cnt[p.gen] == 0 {
 			lo[p.gen], hi[p.gen] = ts, ts
@@ -548,6 +555,9 @@ func (w *clickWrite) prepare(ctx context.Context, gens []int64) error {
 	}
 	names := make([]string, 0, 8)
 	for _, p := range w.todo {
+		if p.expired {
+			continue
+		}
 		c := w.clicks[p.i]
 		names = append(names, armName(c.Experiment, c.Arm))
 		if c.Origin != "" {
@@ -561,6 +571,9 @@ func (w *clickWrite) prepare(ctx context.Context, gens []int64) error {
 	}
 	for k := range w.todo {
 		p := &w.todo[k]
+		if p.expired {
+			continue
+		}
 		c := w.clicks[p.i]
 		e := entry{arm: ids[armName(c.Experiment, c.Arm)], tsOff: c.TS - p.gen*v.genMs}
 		if c.Origin != "" {
@@ -592,6 +605,9 @@ func (w *clickWrite) screen(ctx context.Context) error {
 	var order []groupGen
 	legacy := false
 	for k, p := range w.todo {
+		if p.settled {
+			continue
+		}
 		for g, m := range v.subs {
 			if g == p.gen {
 				continue
@@ -701,6 +717,12 @@ func (w *clickWrite) write(ctx context.Context) error {
 	}
 	for k := range w.todo {
 		p := &w.todo[k]
+		if p.expired {
+			if orphanFields[p.ref.group] == nil {
+				groups = append(groups, p.ref.group)
+			}
+			orphanFields[p.ref.group] = append(orphanFields[p.ref.group], k)
+		}
 		if p.settled {
 			continue
 		}
@@ -1174,7 +1196,7 @@ func (s *Store) DueOrphans(ctx context.Context, topic string, partition int, wat
 	if err := validPartition(topic, partition); err != nil {
 		return nil, permanent(op, err)
 	}
-	v, err := s.refreshIndex(ctx, 0, nil)
+	legacy, err := s.legacyBound(ctx)
 	if err != nil {
 		return nil, err
 	}
@@ -1210,7 +1232,7 @@ func (s *Store) DueOrphans(ctx context.Context, topic string, partition int, wat
 		var gone []int
 		for i, cmd := range cmds {
 			replies[i], _ = cmd.Val().([]any)
-			if st, _ := replies[i][0].(string); st == "gone" && v.legacy != NoTime {
+			if st, _ := replies[i][0].(string); st == "gone" && legacy != NoTime {
 				gone = append(gone, i)
 			}
 		}
@@ -1279,7 +1301,7 @@ func (s *Store) SettleOrphans(ctx context.Context, topic string, partition int, 
 	if len(clickIDs) == 0 {
 		return nil
 	}
-	v, err := s.refreshIndex(ctx, 0, nil)
+	legacy, err := s.legacyBound(ctx)
 	if err != nil {
 		return err
 	}
@@ -1288,7 +1310,7 @@ func (s *Store) SettleOrphans(ctx context.Context, topic string, partition int, 
 	for i, id := range clickIDs {
 		r := refOf(id)
 		pipe.HDel(ctx, s.keys.indexOrphans(r.group), r.field)
-		if v.legacy != NoTime {
+		if legacy != NoTime {
 			pipe.Del(ctx, s.keys.legacyOrphan(id))
 		}
 		members[i] = id

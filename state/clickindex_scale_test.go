@@ -51,8 +51,8 @@ func indexKeyCount(t testing.TB, ctx context.Context, s *Store) int {
 //     pending click, entries, filters and key overhead included (the
 //     issue's budget for the compact index; a project target);
 //   - as the watermark advances, no entry goes before the watermark has
-//     passed its click time plus the horizon, and every entry is gone once
-//     it has passed that plus one generation;
+//     passed its click time plus the horizon (with a slack of 1 ms), and
+//     every entry is gone once it has passed that plus one generation;
 //   - once the watermark is past the last click plus horizon and one
 //     generation, no index key is left and the memory is given back.
 func TestClickIndexMillion(t *testing.T) {
@@ -62,7 +62,8 @@ func TestClickIndexMillion(t *testing.T) {
 		horizon = 4 * time.Hour
 		span    = 3 * time.Hour
 	)
-	s, rdb, _ := newStore(t, Options{Prefix: "mil", IndexGenerations: 4})
+	// No slack: entries go as soon as the rule allows.
+	s, rdb, _ := newStore(t, Options{Prefix: "mil", IndexGenerations: 4, ClickTTLSlack: time.Millisecond})
 	ctx, cancel := context.WithTimeout(context.Background(), 5*time.Minute)
 	defer cancel()
 	info, err := s.OpenClickIndex(ctx, ClickIndexOptions{Horizon: horizon})
@@ -127,7 +128,7 @@ func TestClickIndexMillion(t *testing.T) {
 
 	// Retire as the watermark advances by half a generation at a time.
 	g := info.Generation.Milliseconds()
-	h := horizon.Milliseconds()
+	h := horizon.Milliseconds() + 1 // the horizon and the slack
 	for wm := t0 + h; wm <= tsOf(n-1)+h+2*g; wm += g / 2 {
 		if _, err := s.RetireClickIndex(ctx, wm); err != nil {
 			t.Fatal(err)

@@ -23,9 +23,9 @@ import (
 // of the generation before, so that each sub-key holds about
 // indexKeyFields clicks and stays in Redis's compact listpack encoding.
 // A generation is deleted as a whole once the watermark passes its end
-// plus the horizon (the longest attribution window), so an entry never
-// goes before its window has passed and is gone at most one generation
-// after. DEVELOPERS.md ("Key layouts") describes every key byte by byte.
+// plus the horizon (the longest attribution window) and a slack
+// (Options.ClickTTLSlack), so an entry never goes before its window and
+// the slack have passed and is gone at most one generation after. DEVELOPERS.md ("Key layouts") describes every key byte by byte.
 
 // Layout constants of the click index. Changing one changes the layout:
 // raise indexVersion and describe the upgrade in DEVELOPERS.md.
@@ -489,10 +489,11 @@ type RetireResult struct {
 const retireBatch = 4096
 
 // RetireClickIndex deletes every generation of the click index that ends
-// at least the horizon before watermark (an event time, Unix ms): its
-// entries, filters and sizes. Entries thus live until the watermark has
-// passed their click time plus the horizon, and at most one generation
-// longer. It is idempotent, and any Store may call it; the service calls
+// at least the horizon plus Options.ClickTTLSlack before watermark (an
+// event time, Unix ms): its entries, filters and sizes. An entry thus
+// lives until the watermark has passed its click time plus the horizon
+// plus the slack (a margin for conversions later than the pipeline's
+// lateness), and at most one generation longer. It is idempotent, and any Store may call it; the service calls
 // it from the owner of the click topic's first partition. Once the
 // watermark has passed the first layout's horizon plus the orphan TTL,
 // the legacy bound is cleared too.
@@ -514,7 +515,7 @@ func (s *Store) RetireClickIndex(ctx context.Context, watermark int64) (RetireRe
 	if err != nil {
 		return res, permanent(op, err)
 	}
-	through := floorDiv64(watermark-v.horizonMs, v.genMs) - 1
+	through := floorDiv64(watermark-v.horizonMs-s.opts.ClickTTLSlack.Milliseconds(), v.genMs) - 1
 	var gens []int64
 	for g := range v.subs {
 		if g <= through {

@@ -28,6 +28,23 @@ import (
 // orphan TTL. Instances of the first layout must be stopped before the
 // upgrade: they do not see the second layout.
 
+// legacyBound reads the descriptor's legacy bound: NoTime when there is
+// none, or no descriptor (the index is not created by this read).
+func (s *Store) legacyBound(ctx context.Context) (int64, error) {
+	v, err := s.rdb.HGet(ctx, s.keys.indexMeta(), "legacy").Result()
+	switch {
+	case errors.Is(err, redis.Nil):
+		return NoTime, nil
+	case err != nil:
+		return 0, redisFailure("click index", err)
+	}
+	b, err := parseInt(v)
+	if err != nil {
+		return 0, permanent("click index", err)
+	}
+	return b, nil
+}
+
 // legacyActive reports whether a click or conversion at ts may meet the
 // first layout's keys.
 func (v indexView) legacyActive(ts int64) bool {

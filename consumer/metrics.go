@@ -48,7 +48,7 @@ var knownReasons = []Reason{
 	ReasonBadTimestamp, ReasonAbsurdTimestamp, ReasonDuplicateClick, ReasonUnknownClick,
 	ReasonAttributionMismatch, ReasonConversionBeforeClick, ReasonConversionAfterWindow,
 	ReasonDuplicateConversion, ReasonOrphanExpired, ReasonCapExceeded, ReasonLayoutMismatch,
-	ReasonBadControl,
+	ReasonBadControl, ReasonMissingAttribution,
 }
 
 // NewMetrics creates the metrics and registers them on reg, panicking (as

@@ -29,8 +29,10 @@ type Options struct {
 	// Redis. It must not contain '{' or '}'. Default: "ripen".
 	Prefix string
 	// ClickTTLSlack is how long past the attribution window click index
-	// entries and conversion markers live (wall-clock TTL = window + slack).
-	// Default: 1h.
+	// entries and conversion markers live: a margin for conversions that
+	// come later than the pipeline's lateness allows. Index entries are
+	// retired by event time (RetireClickIndex), markers expire by
+	// wall-clock TTL (window + slack). Default: 1h.
 	ClickTTLSlack time.Duration
 	// OrphanTTL is the wall-clock lifetime of a parked orphan conversion,
 	// a safety net behind the event-time deadline sweep (DueOrphans); keep
@@ -170,6 +172,22 @@ func (s *Store) register(ctx context.Context, experiment string) error {
 	}
 	s.registered.Store(experiment, struct{}{})
 	return nil
+}
+
+// ArmMemory returns the Redis memory of an arm's hash (MEMORY USAGE with
+// every field sampled), 0 if the arm has none.
+func (s *Store) ArmMemory(ctx context.Context, experiment, arm string) (int64, error) {
+	if err := validExperiment(experiment); err != nil {
+		return 0, permanent("arm memory", err)
+	}
+	n, err := s.rdb.MemoryUsage(ctx, s.keys.arm(experiment, arm), 0).Result()
+	switch {
+	case errors.Is(err, redis.Nil):
+		return 0, nil
+	case err != nil:
+		return 0, redisFailure("arm memory", fmt.Errorf("experiment %q arm %q: %w", experiment, arm, err))
+	}
+	return n, nil
 }
 
 // SetResume records the offset a consumer of topic/partition resumes from

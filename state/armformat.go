@@ -17,10 +17,13 @@ import (
 //
 //   - "z", the base: every count the arm had at its last compaction, in
 //     the binary encoding of encodeBase (at most one).
-//   - "u:<n>", records: what one Apply added to the arm, as text pairs
-//     "<field> <count> <field> <count> ..." whose field names are those of
-//     the first layout below. "#" counts the records written (it names
-//     the next one) and "#b" their bytes since the last compaction.
+//   - "u:<n>" and "c:<n>", records: what the n-th Apply since the last
+//     compaction added to the arm: its clicks in the binary encoding of a
+//     base ("u:"), and the conversions it counted as text pairs
+//     "<field> <count> <field> <count> ..." whose field names are those
+//     of the first layout below ("c:"; the apply script writes them). "#"
+//     counts the Applies that wrote records (it names the next) and "#b"
+//     adds up the records' bytes.
 //   - The first layout's counter fields, which only hashes written before
 //     records existed hold: "b:<level>:<index>" clicks and
 //     "v:<level>:<index>" conversions of a pending bucket, "mc" and "mv"
@@ -38,6 +41,7 @@ import (
 const (
 	armBaseField    = "z"
 	armRecordPrefix = "u:"
+	armConvPrefix   = "c:"
 	armCountField   = "#"
 	armBytesField   = "#b"
 )
@@ -155,6 +159,8 @@ func parseArmHash(h map[string]string, nbins int) (armCounts, error) {
 		case f == armBaseField:
 			err = a.addBase([]byte(v))
 		case strings.HasPrefix(f, armRecordPrefix):
+			err = a.addBase([]byte(v))
+		case strings.HasPrefix(f, armConvPrefix):
 			err = a.addRecord(v)
 		case f == armCountField, f == armBytesField:
 			_, err = parseCount(f, v)
@@ -343,32 +349,9 @@ func compareBucketKeys(x, y estimator.BucketKey) int {
 	return 0
 }
 
-// clickRecord writes the click part of an arm's record: its pending
-// click buckets (in (level, index) order) and matured clicks as
-// "<field> <count>" pairs; "" when there are none.
+// clickRecord is the click part of an arm's record: its pending click
+// buckets and matured clicks in the base encoding; "" when there are none.
 func clickRecord(clicks map[estimator.BucketKey]uint64, matured uint64) string {
-	keys := make([]estimator.BucketKey, 0, len(clicks))
-	for k, n := range clicks {
-		if n > 0 {
-			keys = append(keys, k)
-		}
-	}
-	slices.SortFunc(keys, compareBucketKeys)
-	b := make([]byte, 0, 20*len(keys)+16)
-	for _, k := range keys {
-		if len(b) > 0 {
-			b = append(b, ' ')
-		}
-		b = append(b, bucketField('b', k)...)
-		b = append(b, ' ')
-		b = strconv.AppendUint(b, clicks[k], 10)
-	}
-	if matured > 0 {
-		if len(b) > 0 {
-			b = append(b, ' ')
-		}
-		b = append(b, "mc "...)
-		b = strconv.AppendUint(b, matured, 10)
-	}
-	return string(b)
+	c := armCounts{clicks: clicks, maturedClicks: matured}
+	return string(c.encodeBase())
 }

@@ -83,8 +83,9 @@ func TestArmBaseRoundTrip(t *testing.T) {
 	base.delays[2] = 1
 	h := map[string]string{
 		armBaseField:          string(base.encodeBase()),
-		armRecordPrefix + "1": "b:3:10 2 mc 4 v:3:10 1 d:2 1 dn 1 ds 900",
-		armRecordPrefix + "2": "b:0:7 1",
+		armRecordPrefix + "1": clickRecord(map[estimator.BucketKey]uint64{{Level: 3, Index: 10}: 2}, 4),
+		armConvPrefix + "1":   "v:3:10 1 d:2 1 dn 1 ds 900",
+		armConvPrefix + "2":   "b:0:7 1",
 		"b:3:10":              "1",
 		"mv":                  "2",
 		armCountField:         "2",
@@ -105,21 +106,38 @@ func TestArmBaseRoundTrip(t *testing.T) {
 		t.Errorf("parsed %+v, want %+v", got, want)
 	}
 	for _, rec := range []string{"b:3:10", "b:3:10 x", "q 1", "b:3:10 -1", "d:99 1", " b:0:1 1"} {
-		if _, err := parseArmHash(map[string]string{armRecordPrefix + "1": rec}, nbins); err == nil {
+		if _, err := parseArmHash(map[string]string{armConvPrefix + "1": rec}, nbins); err == nil {
 			t.Errorf("record %q parsed", rec)
 		}
 	}
 }
 
-// TestClickRecord checks the click part of a record: sorted pairs, the
-// matured clicks last, nothing for no clicks.
+// TestClickRecord checks the click part of a record: the base encoding
+// of the clicks, nothing for no clicks.
 func TestClickRecord(t *testing.T) {
-	got := clickRecord(map[estimator.BucketKey]uint64{{Level: 2, Index: 5}: 3, {Level: 0, Index: -4}: 1, {Level: 0, Index: 9}: 0}, 7)
-	if want := "b:0:-4 1 b:2:5 3 mc 7"; got != want {
-		t.Errorf("record %q, want %q", got, want)
+	clicks := map[estimator.BucketKey]uint64{{Level: 2, Index: 5}: 3, {Level: 0, Index: -4}: 1, {Level: 0, Index: 9}: 0}
+	got := newArmCounts(4)
+	if err := got.addBase([]byte(clickRecord(clicks, 7))); err != nil {
+		t.Fatal(err)
+	}
+	want := newArmCounts(4)
+	want.clicks[estimator.BucketKey{Level: 2, Index: 5}] = 3
+	want.clicks[estimator.BucketKey{Level: 0, Index: -4}] = 1
+	want.maturedClicks = 7
+	if !sameCounts(got, want) {
+		t.Errorf("record holds %+v, want %+v", got, want)
 	}
 	if got := clickRecord(nil, 0); got != "" {
 		t.Errorf("empty record %q", got)
+	}
+	// 3,600 clicks a second apart in the finest buckets (clicks ahead of
+	// the watermark) take about 3 bytes each.
+	many := map[estimator.BucketKey]uint64{}
+	for i := range int64(3600) {
+		many[estimator.BucketKey{Index: 1_938_124_800 + i}] = 2
+	}
+	if n := len(clickRecord(many, 0)); n > 3*3600+16 {
+		t.Errorf("record of 3600 buckets takes %d bytes", n)
 	}
 }
 

@@ -12,16 +12,17 @@
 -- ARGV[4] marker TTL in ms; ARGV[5] R, the number of ranges, followed by R
 -- triples (offsets field "<topic>/<partition>", first offset, last offset);
 -- then A, the number of arms, and per arm: name, the click record (the
--- arm's click counts as "<field> <count>" pairs, "" for none), C, then C
+-- arm's click counts in the binary base encoding, "" for none), C, then C
 -- quintuples (origin, bucket field "v:<l>:<i>" or "mv", delay field
 -- "d:<bin>", delay ms, click field "b:<l>:<i>" or "mc" of a click that
 -- counts with the conversion, or "" for none). A click that comes with its
 -- conversion (self-attributed) is guarded by the conversion marker like the
 -- conversion itself, so a re-read counts neither twice.
 --
--- Each arm gets one record field "u:<n>" holding its click record and the
--- counts of the conversions counted now, summed per field; "#" numbers the
--- records and "#b" adds up their bytes (see state/armformat.go).
+-- Each arm gets up to two record fields: "u:<n>" holding its click record
+-- and "c:<n>" the counts of the conversions counted now, summed per field
+-- as "<field> <count>" pairs; "#" numbers the records and "#b" adds up
+-- their bytes (see state/armformat.go).
 --
 -- Reply, first element a status:
 --   {"fenced", field, stored generation}  a range's partition has a newer owner
@@ -134,18 +135,22 @@ for a = 1, na do
     end
   end
   local parts = {}
-  if rec ~= '' then
-    parts[1] = rec
-  end
   for _, f in ipairs(order) do
     parts[#parts + 1] = f .. ' ' .. string.format('%.0f', sum[f])
   end
   local bytes = 0
-  if #parts > 0 then
-    rec = table.concat(parts, ' ')
+  if rec ~= '' or #parts > 0 then
     local n = redis.call('HINCRBY', akey, '#', 1)
-    redis.call('HSET', akey, 'u:' .. n, rec)
-    bytes = redis.call('HINCRBY', akey, '#b', #rec)
+    local size = #rec
+    if rec ~= '' then
+      redis.call('HSET', akey, 'u:' .. n, rec)
+    end
+    if #parts > 0 then
+      local conv = table.concat(parts, ' ')
+      redis.call('HSET', akey, 'c:' .. n, conv)
+      size = size + #conv
+    end
+    bytes = redis.call('HINCRBY', akey, '#b', size)
   end
   sizes[#sizes + 1] = redis.call('HLEN', akey)
   sizes[#sizes + 1] = bytes

@@ -158,20 +158,27 @@ func (g *genState) receive(m fetched, cfg Config, now time.Time) {
 // hold-back boundary (undecodable messages pass), and returns them as a
 // batch. Holding back by prefix keeps each partition's applied offsets
 // contiguous and makes what a refit sees a function of the partition logs
-// alone. While the boundary is unknown everything is held. A partition
-// holding its share of pipeline.holdback_cap has its reader paused until
-// it holds less; if more than the cap is held all the same, everything is
-// released (overflow reports that), trading determinism for bounded
-// memory.
+// alone. While the boundary is unknown everything is held. Conversions of
+// experiments that use the click index are held, too, until every click
+// partition has applied its events through their time, so that they find
+// their click indexed rather than wait for it in Redis (when the click
+// topic is read behind the conversion topic, as in a replay or after a
+// pause). A partition holding its share of pipeline.holdback_cap has its
+// reader paused until it holds less; if more than the cap is held all the
+// same, everything is released (overflow reports that), trading
+// determinism (and the join's economy) for bounded memory.
 func (g *genState) release(cfg Config) (b *batch, overflow bool) {
 	b = newBatch()
 	overflow = g.heldTotal > cfg.Pipeline.HoldbackCap
 
-	bound := g.times.boundary
 	for _, tp := range g.assigned {
 		p := g.own[tp]
 		if p == nil {
 			continue
+		}
+		bound := g.times.boundary
+		if tp.Topic == cfg.Kafka.ConversionTopic && cfg.indexes() && bound != noTime {
+			bound = min(bound, g.times.clicksApplied) // noTime holds them all
 		}
 		n := 0
 		for n < len(p.held) {

@@ -40,16 +40,20 @@ const forever = int64(math.MaxInt64)
 //     the latest event time seen. Unlike the watermark it does not run
 //     ahead when the busy partitions are caught up: a quiet partition may
 //     still bring events of its own time (see genState.retire).
+//   - clicksApplied: the minimum over the click partitions of the time
+//     through which each applied its events: conversions up to it find
+//     their click indexed (see genState.release).
 type groupTimes struct {
-	watermark  int64
-	applied    int64
-	swept      int64
-	boundary   int64
-	oldestSeen int64
+	watermark     int64
+	applied       int64
+	swept         int64
+	boundary      int64
+	oldestSeen    int64
+	clicksApplied int64
 }
 
 // unknownTimes is a groupTimes that knows nothing.
-var unknownTimes = groupTimes{watermark: noTime, applied: noTime, swept: noTime, boundary: noTime, oldestSeen: noTime}
+var unknownTimes = groupTimes{watermark: noTime, applied: noTime, swept: noTime, boundary: noTime, oldestSeen: noTime, clicksApplied: noTime}
 
 // partitionMeta is what the generation knows of every partition of the
 // input topics.
@@ -71,7 +75,7 @@ func computeGroupTimes(meta partitionMeta, prog map[string]map[int]state.Partiti
 	gt := unknownTimes
 	gt.watermark = prev
 	low, high, oldest := forever, noTime, forever
-	applied, swept := forever, forever
+	applied, swept, clicks := forever, forever, forever
 	active, known, appliedKnown, sweptKnown := false, true, true, true
 	for _, tp := range meta.all {
 		rec, ok := prog[tp.Topic][tp.Partition]
@@ -87,6 +91,9 @@ func computeGroupTimes(meta partitionMeta, prog map[string]map[int]state.Partiti
 			appliedKnown = false
 		} else {
 			applied = min(applied, rec.Applied)
+			if tp.Topic == meta.clickTopic {
+				clicks = min(clicks, rec.Applied)
+			}
 		}
 		if tp.Topic != meta.clickTopic {
 			if rec.Swept == noTime {
@@ -115,6 +122,9 @@ func computeGroupTimes(meta partitionMeta, prog map[string]map[int]state.Partiti
 	}
 	if known && oldest != forever {
 		gt.oldestSeen = oldest
+	}
+	if known && appliedKnown {
+		gt.clicksApplied = clicks // forever when no click partition reported
 	}
 	if known && sweptKnown {
 		gt.swept = swept // forever when no conversion partition reported

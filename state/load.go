@@ -2,6 +2,7 @@ package state
 
 import (
 	"context"
+	"errors"
 	"fmt"
 	"slices"
 	"strconv"
@@ -237,33 +238,46 @@ func flatHash(v any) (map[string]string, error) {
 // canonicalize re-keys an arm hash to canonical buckets at wm.
 //
 // Click and conversion counts of one click time may sit in buckets of
-// different levels (a conversion is keyed at its own delta's watermark), so
-// each kind is re-keyed on its own by estimator.FromSnapshot, with
-// conversions posing as clicks (FromSnapshot checks each input bucket's
-// conversions against its clicks).
+// different levels (a conversion is keyed at its own delta's watermark),
+// so each kind is re-keyed on its own: every bucket goes to the canonical
+// bucket at wm of its start time (estimator.Placement), which holds it
+// whole, as Advance re-keys a state, since no bucket was keyed at a later
+// watermark than the stored one; one that has matured goes to the matured
+// totals.
 func canonicalize(l estimator.Layout, wm int64, h map[string]string) (armCounts, error) {
+	place := l.Placement()
 	nbins := len(l.DelayEdges()) - 1
 	a, err := parseArmHash(h, nbins)
 	if err != nil {
 		return armCounts{}, err
 	}
+	top := levels(l)
+	base := l.Base.Milliseconds()
 	rekey := func(m map[estimator.BucketKey]uint64) (map[estimator.BucketKey]uint64, uint64, error) {
-		snap := estimator.ArmSnapshot{Layout: l, Watermark: wm, Delays: make([]uint64, nbins)}
+		res := make(map[estimator.BucketKey]uint64, len(m))
+		var matured uint64
 		for k, n := range m {
-			if n > 0 {
-				snap.Buckets = append(snap.Buckets, estimator.Bucket{BucketKey: k, BucketCounts: estimator.BucketCounts{Clicks: n}})
+			if n == 0 {
+				continue
 			}
+			width := base << k.Level
+			if k.Level > top || k.Index > maxExact/width || k.Index < -maxExact/width {
+				return nil, 0, fmt.Errorf("bucket %d/%d out of range", k.Level, k.Index)
+			}
+			nk, done := place.PendingBucket(k.Index*width, wm)
+			if done {
+				if err := addTo(&matured, n); err != nil {
+					return nil, 0, err
+				}
+				continue
+			}
+			v := res[nk]
+			if err := addTo(&v, n); err != nil {
+				return nil, 0, err
+			}
+			res[nk] = v
 		}
-		st, err := estimator.FromSnapshot(snap)
-		if err != nil {
-			return nil, 0, err
-		}
-		out := st.Snapshot()
-		res := make(map[estimator.BucketKey]uint64, len(out.Buckets))
-		for _, b := range out.Buckets {
-			res[b.BucketKey] = b.Clicks
-		}
-		return res, out.MaturedClicks, nil
+		return res, matured, nil
 	}
 	c := armCounts{delays: a.delays, delayCount: a.delayCount, delaySumMs: a.delaySumMs}
 	var mc, mv uint64
@@ -273,8 +287,10 @@ func canonicalize(l estimator.Layout, wm int64, h map[string]string) (armCounts,
 	if c.converted, mv, err = rekey(a.converted); err != nil {
 		return armCounts{}, fmt.Errorf("%w: conversions: %w", ErrCorrupt, err)
 	}
-	c.maturedClicks = a.maturedClicks + mc
-	c.maturedConversions = a.maturedConversions + mv
+	c.maturedClicks, c.maturedConversions = a.maturedClicks, a.maturedConversions
+	if err := errors.Join(addTo(&c.maturedClicks, mc), addTo(&c.maturedConversions, mv)); err != nil {
+		return armCounts{}, err
+	}
 	return c, nil
 }
 
@@ -318,12 +334,15 @@ type CompactResult struct {
 	Attempts int
 }
 
-// Compact rewrites one arm's hash into canonical form at the stored
-// watermark: exactly one field per canonical bucket, matured and delay
-// totals, no zero fields. It reads the hash, computes the canonical form and
-// replaces the hash only if it still holds what was read (compare-and-set),
-// retrying up to Options.CompactAttempts times, so it is safe beside
-// concurrent Apply calls. Load returns the same state before and after.
+// Compact folds one arm's hash into its base (see state/armformat.go),
+// canonical at the stored watermark: the base alone, holding every count
+// and no zero one. It reads the hash, computes the base and replaces the
+// hash only if it still holds what was read (compare-and-set), retrying up
+// to Options.CompactAttempts times, so it is safe beside concurrent Apply
+// calls. A hash that holds its base alone is left as it is: its buckets
+// may be finer than canonical at a later watermark, which Load re-keys,
+// and it is no larger than a canonical state at the watermark it was
+// written at. Load returns the same state before and after.
 func (s *Store) Compact(ctx context.Context, experiment, arm string) (CompactResult, error) {
 	const op = "compact"
 	if err := validExperiment(experiment); err != nil {
@@ -344,8 +363,8 @@ func (s *Store) Compact(ctx context.Context, experiment, arm string) (CompactRes
 			return res, redisFailure(op, fmt.Errorf("experiment %q arm %q: read: %w", experiment, arm, err))
 		}
 		h := hcmd.Val()
-		res.FieldsBefore = len(h)
-		if len(h) == 0 {
+		res.FieldsBefore, res.FieldsAfter = len(h), len(h)
+		if _, base := h[armBaseField]; len(h) == 0 || (len(h) == 1 && base) {
 			return res, nil
 		}
 		meta := map[string]string{}

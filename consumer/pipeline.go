@@ -235,15 +235,25 @@ func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 		return res, nil
 	}
 	start := time.Now()
+	stage := func(name string, since time.Time) time.Time {
+		now := time.Now()
+		if m := g.s.metrics; m != nil {
+			m.FlushStageDuration.WithLabelValues(name).Observe(now.Sub(since).Seconds())
+		}
+		return now
+	}
 	j, err := g.join(ctx, b)
 	if err != nil {
 		return res, err
 	}
+	t := stage(stageJoin, start)
 	db := g.delta(j)
+	t = stage(stageDelta, t)
 	n, err := g.applyBatch(ctx, j, db)
 	if err != nil {
 		return res, err
 	}
+	stage(stageApply, t)
 	if m := g.s.metrics; m != nil {
 		m.FlushDuration.Observe(time.Since(start).Seconds())
 	}

@@ -173,6 +173,12 @@ type RunStats struct {
 	RedisCommands []CommandStat `json:"redis_commands,omitempty"`
 	// OrphansParked counts conversions parked to wait for their click.
 	OrphansParked float64 `json:"orphans_parked,omitempty"`
+	// StageSeconds is the wall time the flushes spent in each stage (join,
+	// delta, apply; ripen_flush_stage_duration_seconds), and FlushSeconds
+	// in flushes altogether; the rest of a run is reading, holding back,
+	// sweeping, progress and refit ticks.
+	StageSeconds map[string]float64 `json:"stage_seconds,omitempty"`
+	FlushSeconds float64            `json:"flush_seconds,omitempty"`
 	// MaxBytesPerArm is the largest arm hash sampled during and after the
 	// run.
 	MaxBytesPerArm int64 `json:"max_bytes_per_arm,omitempty"`

@@ -81,6 +81,9 @@ func TestRun(t *testing.T) {
 			if !(s.RedisCPUSeconds > 0) || !(s.ProcessCPUSeconds > 0) || len(s.RedisCommands) == 0 {
 				t.Errorf("run %+v: want positive CPU seconds and command stats", s)
 			}
+			if sum := s.StageSeconds["join"] + s.StageSeconds["delta"] + s.StageSeconds["apply"]; !(sum > 0) || sum > s.FlushSeconds*1.001 || s.FlushSeconds > s.Seconds {
+				t.Errorf("run %+v: stages %v take %v s of %v s of flushes", s, s.StageSeconds, sum, s.FlushSeconds)
+			}
 		}
 		if r.CarriedIngest.OrphansParked != 0 || r.CarriedTicked.OrphansParked != 0 {
 			t.Errorf("carried runs parked conversions: %+v %+v", r.CarriedIngest, r.CarriedTicked)

@@ -157,7 +157,14 @@ func (b *bench) pipeline(ctx context.Context, cfg consumer.Config, prefix string
 				if err := b.sampleArms(ctx, st, &run); err != nil {
 					return run, err
 				}
-				run.OrphansParked, err = counter(reg, "ripen_orphans_parked_total")
+				if run.OrphansParked, err = counter(reg, "ripen_orphans_parked_total"); err != nil {
+					return run, err
+				}
+				if run.StageSeconds, err = histogramSums(reg, "ripen_flush_stage_duration_seconds", "stage"); err != nil {
+					return run, err
+				}
+				flush, err := histogramSums(reg, "ripen_flush_duration_seconds", "")
+				run.FlushSeconds = flush[""]
 				return run, err
 			}
 		}
@@ -199,6 +206,31 @@ func counter(reg *prometheus.Registry, name string) (float64, error) {
 		}
 	}
 	return sum, nil
+}
+
+// histogramSums reads the sums of a histogram's series from a registry,
+// by the value of label ("" for a histogram without labels).
+func histogramSums(reg *prometheus.Registry, name, label string) (map[string]float64, error) {
+	mfs, err := reg.Gather()
+	if err != nil {
+		return nil, fmt.Errorf("bench: metrics: %w", err)
+	}
+	out := map[string]float64{}
+	for _, mf := range mfs {
+		if mf.GetName() != name {
+			continue
+		}
+		for _, m := range mf.GetMetric() {
+			key := ""
+			for _, lp := range m.GetLabel() {
+				if lp.GetName() == label {
+					key = lp.GetValue()
+				}
+			}
+			out[key] += m.GetHistogram().GetSampleSum()
+		}
+	}
+	return out, nil
 }
 
 // armBytes returns the mean memory of the workload's arm hashes as st

@@ -181,7 +181,7 @@ func (s *Service) runGeneration(ctx context.Context, dialer *kafka.Dialer, gen *
 		s: s, id: base + gen.ID, assigned: assigned,
 		exps: map[string]*expInfo{}, capped: map[string]bool{},
 		commit: gen.CommitOffsets, meta: meta, own: map[state.TopicPartition]*ownedPart{},
-		times: unknownTimes, swept: map[state.TopicPartition]int64{}, retiredAt: noTime,
+		times: unknownTimes, swept: map[state.TopicPartition]int64{}, retiredAt: noTime, retireNext: noTime,
 	}
 	for _, tp := range assigned {
 		// A partition with nothing to read is caught up from the start.

@@ -48,8 +48,9 @@ type genState struct {
 	// partition's due orphans were settled (from its record at first).
 	swept map[state.TopicPartition]int64
 	// retiredAt is the watermark of the last click index retirement this
-	// generation ran (noTime before the first).
-	retiredAt int64
+	// generation ran (noTime before the first), retireNext the watermark
+	// from which it can retire again (noTime: unknown).
+	retiredAt, retireNext int64
 }
 
 // ownedPart is what the generation tracks of one assigned partition.
@@ -348,14 +349,15 @@ func (g *genState) sweep(ctx context.Context) error {
 
 // retire deletes the click index generations the group is done with (see
 // state.Store.RetireClickIndex). The owner of the click topic's first
-// partition does it, at most once per refit period of event time, at the
-// time every partition applied its events through and every partition,
+// partition does it, at the time every partition applied its events through and every partition,
 // idle ones included, has seen, less the lateness: an event still to come
 // lies after that (as long as none is more than the lateness out of order
 // within its partition), so no conversion still to come needs a
 // generation retired then; the index's slack (state.Options.ClickTTLSlack)
 // covers conversions later than that. A partition that stops receiving
-// events holds retirement back until it gets events again.
+// events holds retirement back until it gets events again. It calls again
+// once the watermark reaches the time the last call said the next
+// generation can go, or retireEvery refit periods later.
 func (g *genState) retire(ctx context.Context) error {
 	s := g.s
 	cfg := s.config()
@@ -367,7 +369,9 @@ func (g *genState) retire(ctx context.Context) error {
 		return nil
 	}
 	wm := min(gt.watermark, min(gt.applied, gt.oldestSeen)-cfg.Pipeline.Lateness.Milliseconds())
-	if g.retiredAt != noTime && wm < g.retiredAt+cfg.Pipeline.RefitEvery.Milliseconds() {
+	due := g.retiredAt == noTime || wm >= g.retiredAt+retireEvery*cfg.Pipeline.RefitEvery.Milliseconds() ||
+		(g.retireNext != noTime && wm >= g.retireNext)
+	if !due {
 		return nil
 	}
 	var res state.RetireResult
@@ -381,9 +385,14 @@ func (g *genState) retire(ctx context.Context) error {
 	if len(res.Generations) > 0 {
 		s.log.Debug("click index generations retired", zap.Int64s("generations", res.Generations), zap.Int("keys", res.Keys), zap.Int64("watermark", wm))
 	}
-	g.retiredAt = wm
+	g.retiredAt, g.retireNext = wm, res.Next
 	return nil
 }
+
+// retireEvery is how many refit periods of event time may pass between
+// retirements when the last one named no next time (or a generation
+// appeared since that ends earlier).
+const retireEvery = 4
 
 // settleOrphan handles a conversion whose click never came: one that
 // carries its own attribution is counted with its click (as BuildOffline

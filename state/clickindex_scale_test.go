@@ -129,10 +129,19 @@ func TestClickIndexMillion(t *testing.T) {
 	// Retire as the watermark advances by half a generation at a time.
 	g := info.Generation.Milliseconds()
 	h := horizon.Milliseconds() + 1 // the horizon and the slack
+	var last RetireResult
 	for wm := t0 + h; wm <= tsOf(n-1)+h+2*g; wm += g / 2 {
-		if _, err := s.RetireClickIndex(ctx, wm); err != nil {
+		res, err := s.RetireClickIndex(ctx, wm)
+		if err != nil {
 			t.Fatal(err)
 		}
+		if res.Next != NoTime && res.Next <= wm {
+			t.Fatalf("watermark %d: next retirement at %d, not after it", wm, res.Next)
+		}
+		if last.Next != NoTime && wm < last.Next && len(res.Generations) > 0 {
+			t.Fatalf("watermark %d retired %v before the announced %d", wm, res.Generations, last.Next)
+		}
+		last = res
 		for i := 3; i < n; i += 9_973 {
 			ts := tsOf(i)
 			has := indexed(t, ctx, s, clickID(i), ts)
@@ -143,6 +152,9 @@ func TestClickIndexMillion(t *testing.T) {
 				t.Fatalf("watermark %d: click %d at %d still indexed a generation after its horizon passed", wm, i, ts)
 			}
 		}
+	}
+	if last.Next != NoTime {
+		t.Errorf("next retirement %d with no generation left", last.Next)
 	}
 	if k := indexKeyCount(t, ctx, s); k != 0 {
 		t.Errorf("%d index keys left after every generation was retired", k)

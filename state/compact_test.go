@@ -154,3 +154,53 @@ func TestCompactConflict(t *testing.T) {
 		t.Fatalf("hash after rewrite: %v", h)
 	}
 }
+
+// TestCompactLoaded folds the arms of a loaded experiment in one round
+// trip: every arm with records is rewritten to its base, except one
+// written between the load and the fold, and Load gives the same state
+// before and after.
+func TestCompactLoaded(t *testing.T) {
+	s, rdb, _ := newStore(t, Options{})
+	ctx := testCtx(t)
+	steps := singleInstance(scenario(8, 900, 2), 60)
+	half := len(steps) / 2
+	applySteps(t, ctx, s, steps[:half], 1)
+	ex, err := s.Load(ctx, "exp-a")
+	if err != nil {
+		t.Fatal(err)
+	}
+	// A write to red after the load: its fold must be refused.
+	if _, err := s.Apply(ctx, &ExperimentDelta{Experiment: "exp-a", Layout: testLayout, Watermark: ex.Watermark, Generation: 1,
+		Ranges: []OffsetRange{{Topic: "other", Partition: 0, From: 0, To: 0}},
+		Arms:   map[string]*ArmDelta{"red": {MaturedClicks: 1}}}); err != nil {
+		t.Fatal(err)
+	}
+	done, err := s.CompactLoaded(ctx, ex)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !slices.Equal(done, []string{"blue", "green"}) {
+		t.Fatalf("folded %v, want blue and green (red was written since the load)", done)
+	}
+	for _, arm := range done {
+		h, err := rdb.HGetAll(ctx, s.keys.arm("exp-a", arm)).Result()
+		if err != nil {
+			t.Fatal(err)
+		}
+		if len(h) != 1 || h[armBaseField] == "" {
+			t.Errorf("%s after the fold: fields %v, want the base alone", arm, slices.Collect(maps.Keys(h)))
+		}
+	}
+	after, err := s.Load(ctx, "exp-a")
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, arm := range []string{"blue", "green"} {
+		if !reflect.DeepEqual(after.States[arm].Snapshot(), ex.States[arm].Snapshot()) {
+			t.Errorf("%s: Load differs after the fold", arm)
+		}
+	}
+	if got, want := after.States["red"].Clicks(), ex.States["red"].Clicks()+1; got != want {
+		t.Errorf("red: %d clicks, want %d", got, want)
+	}
+}

@@ -483,6 +483,9 @@ type RetireResult struct {
 	Generations []int64
 	// Keys is the number of keys deleted.
 	Keys int
+	// Next is the watermark from which a call can retire the oldest
+	// generation left, or NoTime when none is left.
+	Next int64
 }
 
 // retireBatch is the number of keys deleted per round trip.
@@ -499,7 +502,7 @@ const retireBatch = 4096
 // the legacy bound is cleared too.
 func (s *Store) RetireClickIndex(ctx context.Context, watermark int64) (RetireResult, error) {
 	const op = "retire click index"
-	var res RetireResult
+	res := RetireResult{Next: NoTime}
 	meta, err := s.rdb.HGetAll(ctx, s.keys.indexMeta()).Result()
 	if err != nil {
 		return res, redisFailure(op, err)
@@ -515,11 +518,14 @@ func (s *Store) RetireClickIndex(ctx context.Context, watermark int64) (RetireRe
 	if err != nil {
 		return res, permanent(op, err)
 	}
-	through := floorDiv64(watermark-v.horizonMs-s.opts.ClickTTLSlack.Milliseconds(), v.genMs) - 1
+	keep := v.horizonMs + s.opts.ClickTTLSlack.Milliseconds()
+	through := floorDiv64(watermark-keep, v.genMs) - 1
 	var gens []int64
 	for g := range v.subs {
 		if g <= through {
 			gens = append(gens, g)
+		} else if next := (g+1)*v.genMs + keep; res.Next == NoTime || next < res.Next {
+			res.Next = next
 		}
 	}
 	slices.Sort(gens)

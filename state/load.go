@@ -30,6 +30,15 @@ type Experiment struct {
 	// Held counts, per arm, conversions stored but left out of States
 	// because their click's delta has not landed yet (nil if none).
 	Held map[string]uint64
+
+	// folds holds, per arm whose hash holds records, the hash as read
+	// and the base that replaces it (see CompactLoaded).
+	folds map[string]fold
+}
+
+// fold is an arm hash as Load read it and the base it folds into.
+type fold struct {
+	read, base map[string]string
 }
 
 // AppliedOffset is the last offset of a partition applied to an experiment
@@ -124,9 +133,19 @@ func buildExperiment(id string, names []string, parts []any) (*Experiment, error
 		return nil, err
 	}
 	for i, name := range names {
-		c, err := canonicalArm(layout, wm, name, parts[2+i])
+		h, err := flatHash(parts[2+i])
 		if err != nil {
-			return nil, err
+			return nil, fmt.Errorf("arm %q: %w", name, err)
+		}
+		c, err := canonicalize(layout, wm, h)
+		if err != nil {
+			return nil, fmt.Errorf("arm %q: %w", name, err)
+		}
+		if _, base := h[armBaseField]; len(h) > 1 || (len(h) == 1 && !base) {
+			if e.folds == nil {
+				e.folds = make(map[string]fold)
+			}
+			e.folds[name] = fold{read: h, base: c.fields()}
 		}
 		st, held, err := c.state(layout, wm)
 		if err != nil {
@@ -326,6 +345,51 @@ func (c armCounts) state(l estimator.Layout, wm int64) (st *estimator.ArmState, 
 	return st, held, nil
 }
 
+// CompactLoaded folds, as Compact does, the hash of every arm of ex (as
+// Load returned it) that holds records into its base, in one round trip:
+// each rewrite is a compare-and-set against the hash Load read, so an arm
+// written since is left for later. It returns the arms rewritten. The
+// refit owner calls it after each refit with the state it loaded.
+func (s *Store) CompactLoaded(ctx context.Context, ex *Experiment) ([]string, error) {
+	if ex == nil || len(ex.folds) == 0 {
+		return nil, nil
+	}
+	names := make([]string, 0, len(ex.folds))
+	for name := range ex.folds {
+		names = append(names, name)
+	}
+	slices.Sort(names)
+	calls := make([]scriptCall, len(names))
+	for i, name := range names {
+		calls[i] = scriptCall{keys: []string{s.keys.arm(ex.ID, name)}, args: compactArgs(ex.folds[name].read, ex.folds[name].base)}
+	}
+	cmds, err := runPipelined(ctx, s.rdb, compactScript, calls)
+	if err != nil {
+		return nil, redisFailure("compact", fmt.Errorf("experiment %q: %w", ex.ID, err))
+	}
+	var done []string
+	for i, cmd := range cmds {
+		if n, _ := cmd.Int(); n == 1 {
+			done = append(done, names[i])
+		}
+	}
+	return done, nil
+}
+
+// compactArgs lays out compact.lua's ARGV: the fields read, then the ones
+// that replace them.
+func compactArgs(read, want map[string]string) []any {
+	args := make([]any, 0, 1+2*len(read)+2*len(want))
+	args = append(args, len(read))
+	for _, f := range sortedKeys(read) {
+		args = append(args, f, read[f])
+	}
+	for _, f := range sortedKeys(want) {
+		args = append(args, f, want[f])
+	}
+	return args
+}
+
 // CompactResult says what Compact did.
 type CompactResult struct {
 	// FieldsBefore and FieldsAfter count the arm hash's fields.
@@ -386,15 +450,7 @@ func (s *Store) Compact(ctx context.Context, experiment, arm string) (CompactRes
 		if maps2Equal(h, want) {
 			return res, nil
 		}
-		args := make([]any, 0, 1+2*len(h)+2*len(want))
-		args = append(args, len(h))
-		for _, f := range sortedKeys(h) {
-			args = append(args, f, h[f])
-		}
-		for _, f := range sortedKeys(want) {
-			args = append(args, f, want[f])
-		}
-		ok, err := compactScript.Run(ctx, s.rdb, []string{akey}, args...).Int()
+		ok, err := compactScript.Run(ctx, s.rdb, []string{akey}, compactArgs(h, want)...).Int()
 		if err != nil {
 			return res, redisFailure(op, fmt.Errorf("experiment %q arm %q: %w", experiment, arm, err))
 		}

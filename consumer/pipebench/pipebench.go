@@ -132,8 +132,9 @@ type Mode struct {
 	TickedRedisCPUUsPerEvent float64 `json:"ticked_redis_cpu_us_per_event"`
 	// RedisBytesPerPendingClick is the growth of INFO used_memory per
 	// pending click: with the click index, over Result.IndexClicks clicks
-	// fed through it; with carried attribution (no index), over the ingest
-	// run, per click of the workload.
+	// fed through it, spread over three of its generations; with carried
+	// attribution (no index), over the ingest run, per click of the
+	// workload.
 	RedisBytesPerPendingClick float64 `json:"redis_bytes_per_pending_click"`
 	// MaxBytesPerArm is the largest MEMORY USAGE of any arm hash sampled
 	// during and after the ingest and ticked runs.

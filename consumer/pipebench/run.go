@@ -264,19 +264,26 @@ func (b *bench) armBytes(ctx context.Context, st *state.Store) (asLeft, compacte
 	return asLeft, compacted, err
 }
 
-// indexMemory feeds n clicks, continuing the workload's (same ids, times,
-// experiments and arms), through the click index of a fresh prefix in
-// batches of the pipeline's flush size, and returns the growth of
-// used_memory and the Redis CPU per click.
+// indexMemory feeds n clicks, continuing the workload's (ids, experiments
+// and arms), through the click index of a fresh prefix in batches of the
+// pipeline's flush size, and returns the growth of used_memory and the
+// Redis CPU per click. The clicks are spread evenly over three
+// generations of the index from a generation's start, so that the second
+// and third are sized from the one before, as in a steady state; with the
+// default 7-day window a generation is 42 hours.
 func (b *bench) indexMemory(ctx context.Context, n int) (bytesPerClick, cpuUsPerClick float64, err error) {
 	st, err := state.New(b.rdb, state.Options{Prefix: "benchindex"})
 	if err != nil {
 		return 0, 0, fmt.Errorf("bench: %w", err)
 	}
 	window := estimator.DefaultWindow
-	if _, err := st.OpenClickIndex(ctx, state.ClickIndexOptions{Horizon: window}); err != nil {
+	info, err := st.OpenClickIndex(ctx, state.ClickIndexOptions{Horizon: window})
+	if err != nil {
 		return 0, 0, fmt.Errorf("bench: %w", err)
 	}
+	gen := info.Generation.Milliseconds()
+	start := (t0/gen + 1) * gen
+	every := 3 * gen / int64(n)
 	ids := slices.Sorted(maps.Keys(b.w.experiments))
 	r := rand.New(rand.NewPCG(2031, 7))
 	mem0, err := usedMemory(ctx, b.rdb)
@@ -293,7 +300,7 @@ func (b *bench) indexMemory(ctx context.Context, n int) (bytesPerClick, cpuUsPer
 		recs = recs[:0]
 		for j := i; j < min(n, i+batch); j++ {
 			c := click(len(b.w.clicks)+j, ids, b.w.experiments, r)
-			recs = append(recs, state.ClickRecord{ClickID: c.ClickID, Experiment: c.Experiment, Arm: c.Arm, TS: c.TS, Window: window, Origin: "clicks/" + strconv.Itoa(j%3) + "/" + strconv.Itoa(j/3)})
+			recs = append(recs, state.ClickRecord{ClickID: c.ClickID, Experiment: c.Experiment, Arm: c.Arm, TS: start + int64(j)*every, Window: window, Origin: "clicks/" + strconv.Itoa(j%3) + "/" + strconv.Itoa(j/3)})
 		}
 		if _, err := st.IndexClicks(ctx, recs); err != nil {
 			return 0, 0, fmt.Errorf("bench: index clicks: %w", err)

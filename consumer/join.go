@@ -184,7 +184,7 @@ func (g *genState) countClicks(ctx context.Context, cfg Config, j *joined, click
 		if e.seen(ce.m.tp, ce.m.offset) {
 			continue
 		}
-		if cfg.carried(e.id) {
+		if g.carried(cfg, e.id) {
 			j.events = append(j.events, joinedEvent{e: e, arm: ce.c.Arm, tp: ce.m.tp, offset: ce.m.offset, origin: ce.org, clickTS: ce.c.TS})
 			continue
 		}
@@ -208,7 +208,7 @@ func (g *genState) carryConversions(ctx context.Context, cfg Config, j *joined, 
 	indexes := cfg.indexes()
 	for i, cv := range convs {
 		v := cv.v
-		named := v.Experiment != "" && cfg.carried(v.Experiment)
+		named := v.Experiment != "" && g.carried(cfg, v.Experiment)
 		switch {
 		case named && v.Attributed:
 			e, rej, err := g.experiment(ctx, cfg, v.Experiment, v.Arm)
@@ -242,6 +242,21 @@ func (g *genState) carryConversions(ctx context.Context, cfg Config, j *joined, 
 		}
 	}
 	return lookups, looked, same, nil
+}
+
+// carried reports whether experiment id's conversions carry their
+// attribution (Config.carried), remembered for the generation: the
+// setting cannot change at run time.
+func (g *genState) carried(cfg Config, id string) bool {
+	c, ok := g.carriedOf[id]
+	if !ok {
+		c = cfg.carried(id)
+		if g.carriedOf == nil {
+			g.carriedOf = map[string]bool{}
+		}
+		g.carriedOf[id] = c
+	}
+	return c
 }
 
 // indexAndLookUp indexes the records while it looks up the conversions,

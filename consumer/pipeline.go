@@ -47,6 +47,8 @@ type genState struct {
 	// swept is the last tick through which each owned conversion
 	// partition's due orphans were settled (from its record at first).
 	swept map[state.TopicPartition]int64
+	// carriedOf caches Config.carried by experiment (see carried).
+	carriedOf map[string]bool
 	// retiredAt is the watermark of the last click index retirement this
 	// generation ran (noTime before the first), retireNext the watermark
 	// from which it can retire again (noTime: unknown).

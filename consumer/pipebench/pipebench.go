@@ -180,6 +180,7 @@ type RunStats struct {
 	// sweeping, progress and refit ticks.
 	StageSeconds map[string]float64 `json:"stage_seconds,omitempty"`
 	FlushSeconds float64            `json:"flush_seconds,omitempty"`
+	Flushes      int                `json:"flushes,omitempty"`
 	// MaxBytesPerArm is the largest arm hash sampled during and after the
 	// run.
 	MaxBytesPerArm int64 `json:"max_bytes_per_arm,omitempty"`

@@ -163,8 +163,10 @@ func (b *bench) pipeline(ctx context.Context, cfg consumer.Config, prefix string
 				if run.StageSeconds, err = histogramSums(reg, "ripen_flush_stage_duration_seconds", "stage"); err != nil {
 					return run, err
 				}
+				delete(run.StageSeconds, "count")
 				flush, err := histogramSums(reg, "ripen_flush_duration_seconds", "")
 				run.FlushSeconds = flush[""]
+				run.Flushes = int(flush["count"])
 				return run, err
 			}
 		}
@@ -209,7 +211,8 @@ func counter(reg *prometheus.Registry, name string) (float64, error) {
 }
 
 // histogramSums reads the sums of a histogram's series from a registry,
-// by the value of label ("" for a histogram without labels).
+// by the value of label ("" for a histogram without labels), and their
+// total sample count (under "count").
 func histogramSums(reg *prometheus.Registry, name, label string) (map[string]float64, error) {
 	mfs, err := reg.Gather()
 	if err != nil {
@@ -228,6 +231,7 @@ func histogramSums(reg *prometheus.Registry, name, label string) (map[string]flo
 				}
 			}
 			out[key] += m.GetHistogram().GetSampleSum()
+			out["count"] += float64(m.GetHistogram().GetSampleCount())
 		}
 	}
 	return out, nil

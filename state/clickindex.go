@@ -597,9 +597,9 @@ func (w *clickWrite) screen(ctx context.Context) error {
 		gen int64
 	}
 	type filterCmd struct {
-		key    string
-		probes []probe
-		args   []any
+		key     string
+		probes  []probe
+		offsets []int64
 	}
 	filters := map[groupGen]*filterCmd{}
 	var order []groupGen
@@ -620,7 +620,7 @@ func (w *clickWrite) screen(ctx context.Context) error {
 				order = append(order, gg)
 			}
 			f.probes = append(f.probes, probe{k, g})
-			f.args = append(f.args, "GET", "u1", p.ref.bit(m))
+			f.offsets = append(f.offsets, p.ref.bit(m))
 		}
 		if v.legacy != NoTime && w.clicks[p.i].TS <= v.legacy {
 			legacy = true
@@ -630,10 +630,10 @@ func (w *clickWrite) screen(ctx context.Context) error {
 		return nil
 	}
 	pipe := s.rdb.Pipeline()
-	cmds := make([]*redis.IntSliceCmd, len(order))
+	reads := make([]func() ([]int64, error), len(order))
 	for i, gg := range order {
 		f := filters[gg]
-		cmds[i] = pipe.BitField(ctx, f.key, f.args...)
+		reads[i] = w.v.bits.get(ctx, pipe, f.key, f.offsets)
 	}
 	w.legacyGets(ctx, pipe)
 	if _, err := pipe.Exec(ctx); err != nil && !errors.Is(err, redis.Nil) {
@@ -641,7 +641,7 @@ func (w *clickWrite) screen(ctx context.Context) error {
 	}
 	var hits []probe
 	for i, gg := range order {
-		bitsSet, err := cmds[i].Result()
+		bitsSet, err := reads[i]()
 		if err != nil || len(bitsSet) != len(filters[gg].probes) {
 			return redisFailure(op, fmt.Errorf("filter %s: %v", filters[gg].key, err))
 		}
@@ -695,7 +695,7 @@ func (w *clickWrite) write(ctx context.Context) error {
 	const op = "put clicks"
 	s, v := w.s, w.v
 	pipe := s.rdb.Pipeline()
-	setBits := map[groupGen][]any{}
+	setBits := map[groupGen][]int64{}
 	var order []groupGen
 	counts := map[int64]int64{}
 	orphanFields := map[int][]int{} // group -> indices into todo
@@ -732,7 +732,7 @@ func (w *clickWrite) write(ctx context.Context) error {
 		if setBits[gg] == nil {
 			order = append(order, gg)
 		}
-		setBits[gg] = append(setBits[gg], "SET", "u1", p.ref.bit(m), 1)
+		setBits[gg] = append(setBits[gg], p.ref.bit(m))
 		counts[p.gen]++
 		if orphanFields[p.ref.group] == nil {
 			groups = append(groups, p.ref.group)
@@ -744,7 +744,7 @@ func (w *clickWrite) write(ctx context.Context) error {
 		return nil
 	}
 	for _, gg := range order {
-		pipe.BitField(ctx, s.keys.indexFilter(gg.group, gg.gen), setBits[gg]...)
+		v.bits.set(ctx, pipe, s.keys.indexFilter(gg.group, gg.gen), setBits[gg])
 	}
 	for g, n := range counts {
 		pipe.HIncrBy(ctx, s.keys.indexMeta(), "n:"+strconv.FormatInt(g, 10), n)

@@ -382,3 +382,51 @@ func TestClickIndexKeysStayListpacks(t *testing.T) {
 		t.Errorf("entry key encodings %v, want listpacks only", counts)
 	}
 }
+
+// TestFilterBitsOneByOne runs the duplicate check across generations with
+// filter bits read and set one command per bit, as on a server without
+// BITFIELD (the embedded store of `ripen demo`), and checks that both ways
+// leave the same filter.
+func TestFilterBitsOneByOne(t *testing.T) {
+	s, rdb, _ := newStore(t, Options{Prefix: "bits"})
+	ctx := testCtx(t)
+	if _, err := s.OpenClickIndex(ctx, ClickIndexOptions{Horizon: 4 * time.Hour}); err != nil {
+		t.Fatal(err)
+	}
+	s.ix.mu.Lock()
+	s.ix.bits = filterBits{perBit: true}
+	s.ix.mu.Unlock()
+	g := time.Hour.Milliseconds()
+	var recs []ClickRecord
+	for i := range 500 {
+		recs = append(recs, ClickRecord{ClickID: fmt.Sprintf("b%d", i), Experiment: "e", Arm: "a", TS: t0 + int64(i)*(3*g/500), Window: 4 * time.Hour})
+	}
+	if _, err := s.IndexClicks(ctx, recs); err != nil {
+		t.Fatal(err)
+	}
+	res, err := s.IndexClicks(ctx, []ClickRecord{{ClickID: "b7", Experiment: "e", Arm: "z", TS: t0 + 2*g + 5, Window: 4 * time.Hour, Origin: "clicks/0/1"}})
+	if err != nil || res[0].Status != ClickDuplicate || res[0].Existing.TS != recs[7].TS {
+		t.Fatalf("duplicate in another generation: %+v %v", res, err)
+	}
+	// The same clicks with BITFIELD under another prefix set the same bits.
+	other, err := New(rdb, Options{Prefix: "bits2"})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if _, err := other.IndexClicks(ctx, recs); err != nil {
+		t.Fatal(err)
+	}
+	v, err := s.refreshIndex(ctx, 0, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for gen := range v.subs {
+		for grp := range indexGroups {
+			a, _ := rdb.Get(ctx, s.keys.indexFilter(grp, gen)).Result()
+			b, _ := rdb.Get(ctx, other.keys.indexFilter(grp, gen)).Result()
+			if a != b {
+				t.Fatalf("filter of group %d, generation %d differs between GETBIT/SETBIT and BITFIELD", grp, gen)
+			}
+		}
+	}
+}

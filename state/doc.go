@@ -6,9 +6,11 @@
 //
 // Keys of one experiment share the hash tag {x:<experiment>} so that a
 // delta, its conversion markers and the offsets it covers are applied by one
-// atomic script even on Redis Cluster; the click index entry and the orphan
-// of one click share {k:<click>}. Store works with a single server and with
-// a cluster client alike.
+// atomic script even on Redis Cluster; the click index keeps many clicks per
+// key, and every key a click id uses (its entries in each generation, the
+// conversion parked for it) shares its group's tag {i:<group>}, so that
+// parking a conversion and indexing its click are atomic with each other.
+// Store works with a single server and with a cluster client alike.
 //
 // Apply is idempotent: a delta whose offsets were already recorded is
 // skipped, so a retried script call (go-redis retries after read timeouts)

@@ -90,6 +90,7 @@ type indexState struct {
 	retired   int64
 	legacy    int64
 	subs      map[int64]int // sub-keys per generation
+	bits      filterBits    // how the server's filter bits are read and set
 	copied    map[groupGen]bool
 	names     map[string]uint64 // "a:<exp>\n<arm>" or "t:<topic>" -> id
 	byID      map[uint64]string // id -> "a:..." or "t:..."
@@ -152,12 +153,21 @@ func (s *Store) OpenClickIndex(ctx context.Context, o ClickIndexOptions) (ClickI
 	if err != nil {
 		return ClickIndexInfo{}, permanent(op, err)
 	}
+	// BITFIELD, or one command per bit where the server lacks it.
+	perBit := false
+	if err := s.rdb.BitField(ctx, s.keys.indexMeta()+":probe", "GET", "u1", 0).Err(); err != nil {
+		if !strings.Contains(strings.ToLower(err.Error()), "unknown command") {
+			return ClickIndexInfo{}, redisFailure(op, fmt.Errorf("probe BITFIELD: %w", err))
+		}
+		perBit = true
+	}
 	ix := &s.ix
 	ix.mu.Lock()
 	defer ix.mu.Unlock()
 	if err := ix.setMeta(meta); err != nil {
 		return ClickIndexInfo{}, permanent(op, err)
 	}
+	ix.bits = filterBits{perBit: perBit}
 	ix.open = true
 	return ix.info(), nil
 }
@@ -242,6 +252,56 @@ func (ix *indexState) setMeta(meta map[string]string) error {
 type indexView struct {
 	genMs, horizonMs, retired, legacy int64
 	subs                              map[int64]int // known generations, not retired
+	bits                              filterBits
+}
+
+// filterBits reads and sets filter bits: with BITFIELD, one command per
+// key, or, on a server without it (the embedded store `ripen demo` runs
+// when no redis-server is installed), with GETBIT and SETBIT, one command
+// per bit.
+type filterBits struct{ perBit bool }
+
+// get queues reads of the bits at offsets of key and returns a function
+// that gives them once the pipeline ran.
+func (f filterBits) get(ctx context.Context, pipe redis.Pipeliner, key string, offsets []int64) func() ([]int64, error) {
+	if !f.perBit {
+		args := make([]any, 0, 3*len(offsets))
+		for _, o := range offsets {
+			args = append(args, "GET", "u1", o)
+		}
+		cmd := pipe.BitField(ctx, key, args...)
+		return cmd.Result
+	}
+	cmds := make([]*redis.IntCmd, len(offsets))
+	for i, o := range offsets {
+		cmds[i] = pipe.GetBit(ctx, key, o)
+	}
+	return func() ([]int64, error) {
+		out := make([]int64, len(cmds))
+		for i, c := range cmds {
+			v, err := c.Result()
+			if err != nil {
+				return nil, err
+			}
+			out[i] = v
+		}
+		return out, nil
+	}
+}
+
+// set queues setting the bits at offsets of key.
+func (f filterBits) set(ctx context.Context, pipe redis.Pipeliner, key string, offsets []int64) {
+	if !f.perBit {
+		args := make([]any, 0, 4*len(offsets))
+		for _, o := range offsets {
+			args = append(args, "SET", "u1", o, 1)
+		}
+		pipe.BitField(ctx, key, args...)
+		return
+	}
+	for _, o := range offsets {
+		pipe.SetBit(ctx, key, o, 1)
+	}
 }
 
 // gen is the generation of event time t.
@@ -303,7 +363,7 @@ func (s *Store) refreshIndex(ctx context.Context, horizon time.Duration, gens []
 
 // view copies the live generations' sizes. ix.mu must be held.
 func (ix *indexState) view() indexView {
-	v := indexView{genMs: ix.genMs, horizonMs: ix.horizonMs, retired: ix.retired, legacy: ix.legacy, subs: make(map[int64]int, len(ix.subs))}
+	v := indexView{genMs: ix.genMs, horizonMs: ix.horizonMs, retired: ix.retired, legacy: ix.legacy, subs: make(map[int64]int, len(ix.subs)), bits: ix.bits}
 	for g, m := range ix.subs {
 		if g > ix.retired {
 			v.subs[g] = m

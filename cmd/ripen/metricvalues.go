@@ -7,7 +7,7 @@ import (
 	dto "github.com/prometheus/client_model/go"
 )
 
-// The demo and the bench read the service's metrics in process.
+// The demo reads the service's metrics in process.
 
 // sampleCount reads a histogram's sample count.
 func sampleCount(h prometheus.Histogram) uint64 {
@@ -25,13 +25,4 @@ func gaugeValue(g prometheus.Gauge) float64 {
 		return math.NaN()
 	}
 	return m.GetGauge().GetValue()
-}
-
-// counterValue reads a counter's value (NaN if it cannot be read).
-func counterValue(c prometheus.Counter) float64 {
-	var m dto.Metric
-	if err := c.Write(&m); err != nil {
-		return math.NaN()
-	}
-	return m.GetCounter().GetValue()
 }

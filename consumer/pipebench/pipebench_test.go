@@ -26,7 +26,7 @@ func needRedis(t testing.TB) {
 func TestRun(t *testing.T) {
 	needRedis(t)
 	const n = 3000
-	res, err := Run(context.Background(), Options{Events: n, IndexClicks: 20_000})
+	res, err := Run(context.Background(), Options{Events: n, IndexClicks: 5_000})
 	if err != nil {
 		t.Fatal(err)
 	}

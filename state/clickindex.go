@@ -7,7 +7,6 @@ import (
 	"encoding/binary"
 	"errors"
 	"fmt"
-	"hash/fnv"
 	"math"
 	"slices"
 	"strconv"
@@ -214,9 +213,13 @@ type clickRef struct {
 }
 
 func refOf(id string) clickRef {
-	h := fnv.New64a()
-	_, _ = h.Write([]byte(id))
-	x := h.Sum64()
+	// FNV-1a, 64-bit (as hash/fnv's New64a computes it, without its
+	// allocation).
+	x := uint64(14695981039346656037)
+	for i := 0; i < len(id); i++ {
+		x ^= uint64(id[i])
+		x *= 1099511628211
+	}
 	f := id
 	if len(id) > maxVerbatimID {
 		sum := sha256.Sum256([]byte(id))
@@ -246,8 +249,10 @@ type entry struct {
 
 // encode writes the entry as unsigned varints: arm id, time offset, topic
 // id, and, when the topic id is not 0, partition and offset.
-func (e entry) encode() []byte {
-	b := make([]byte, 0, 16)
+func (e entry) encode() []byte { return e.appendTo(make([]byte, 0, 16)) }
+
+// appendTo appends the entry's encoding (see encode) to b.
+func (e entry) appendTo(b []byte) []byte {
 	b = binary.AppendUvarint(b, e.arm)
 	b = binary.AppendUvarint(b, uint64(e.tsOff))
 	b = binary.AppendUvarint(b, e.topic)
@@ -553,34 +558,54 @@ func (w *clickWrite) prepare(ctx context.Context, gens []int64) error {
 	if err := s.sizeGenerations(ctx, v, gens, est); err != nil {
 		return err
 	}
-	names := make([]string, 0, 8)
-	for _, p := range w.todo {
+	// Dictionary names, each built once per distinct experiment and arm,
+	// or topic.
+	type armKey struct{ exp, arm string }
+	armNames := map[armKey]string{}
+	topicNames := map[string]string{}
+	var names []string
+	type origin struct {
+		topic     string
+		partition int
+		offset    int64
+	}
+	origins := make([]origin, len(w.todo))
+	for k, p := range w.todo {
 		if p.expired {
 			continue
 		}
 		c := w.clicks[p.i]
-		names = append(names, armName(c.Experiment, c.Arm))
+		if ak := (armKey{c.Experiment, c.Arm}); armNames[ak] == "" {
+			armNames[ak] = armName(c.Experiment, c.Arm)
+			names = append(names, armNames[ak])
+		}
 		if c.Origin != "" {
-			topic, _, _, _ := splitOrigin(c.Origin)
-			names = append(names, topicName(topic))
+			topic, part, off, _ := splitOrigin(c.Origin)
+			origins[k] = origin{topic, part, off}
+			if topicNames[topic] == "" {
+				topicNames[topic] = topicName(topic)
+				names = append(names, topicNames[topic])
+			}
 		}
 	}
 	ids, err := s.dictIDs(ctx, names)
 	if err != nil {
 		return err
 	}
+	buf := make([]byte, 0, 16*len(w.todo))
 	for k := range w.todo {
 		p := &w.todo[k]
 		if p.expired {
 			continue
 		}
 		c := w.clicks[p.i]
-		e := entry{arm: ids[armName(c.Experiment, c.Arm)], tsOff: c.TS - p.gen*v.genMs}
-		if c.Origin != "" {
-			topic, part, off, _ := splitOrigin(c.Origin)
-			e.topic, e.partition, e.offset = ids[topicName(topic)], part, off
+		e := entry{arm: ids[armNames[armKey{c.Experiment, c.Arm}]], tsOff: c.TS - p.gen*v.genMs}
+		if o := origins[k]; o.topic != "" {
+			e.topic, e.partition, e.offset = ids[topicNames[o.topic]], o.partition, o.offset
 		}
-		p.value = string(e.encode())
+		start := len(buf)
+		buf = e.appendTo(buf)
+		p.value = string(buf[start:])
 	}
 	return nil
 }

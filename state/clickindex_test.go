@@ -2,6 +2,7 @@ package state
 
 import (
 	"fmt"
+	"hash/fnv"
 	"reflect"
 	"testing"
 	"time"
@@ -390,5 +391,25 @@ func TestIndexClicksLargeBatch(t *testing.T) {
 	}
 	if claimed != len(parked) {
 		t.Errorf("new clicks claimed %d orphans, want %d", claimed, len(parked))
+	}
+}
+
+// TestClickRefHash pins the index layout's hash of a click id to FNV-1a
+// (64-bit) as hash/fnv computes it: groups, sub-keys and filter bits of
+// stored entries depend on it.
+func TestClickRefHash(t *testing.T) {
+	for _, id := range []string{"", "k1", "c000123", "ck-00a3f9e2b7c4d5e6f", "√ünïcödé-click"} {
+		h := fnv.New64a()
+		h.Write([]byte(id))
+		want := h.Sum64()
+		if r := refOf(id); r.hash != want || r.group != int(want%indexGroups) {
+			t.Errorf("refOf(%q) = %+v, want hash %x", id, r, want)
+		}
+	}
+	if r := refOf("short-id"); r.field != "short-id" {
+		t.Errorf("a 8-byte id is stored as %q", r.field)
+	}
+	if r := refOf("ck-00a3f9e2b7c4d5e6f"); len(r.field) != hashedIDBytes {
+		t.Errorf("a 20-byte id is stored in %d bytes", len(r.field))
 	}
 }

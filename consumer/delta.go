@@ -123,18 +123,6 @@ func (b *deltaBuilder) ids() []string {
 	return ids
 }
 
-// deltas returns one delta per touched experiment, sorted by id (see
-// build); experiments with nothing to apply get none.
-func (b *deltaBuilder) deltas(bt *batch) []*state.ExperimentDelta {
-	var out []*state.ExperimentDelta
-	for _, id := range b.ids() {
-		if d := b.build(id, bt); d != nil {
-			out = append(out, d)
-		}
-	}
-	return out
-}
-
 // build returns experiment id's delta covering the batch's ranges minus
 // what the experiment applied before (e.applied), with the contributions
 // of the messages not applied before; nil if every range was applied

@@ -213,7 +213,22 @@ type ExperimentConfig struct {
 	// experiment but not revive one ended in Defaults; a control message
 	// can do both. Default: false.
 	Ended bool `yaml:"ended"`
+	// Attribution says how conversions find their click: "indexed" (the
+	// clicks are kept in the click index in Redis and each conversion is
+	// joined by click id) or "carried" (conversions carry experiment, arm
+	// and click_ts; clicks are not indexed, a conversion is counted from
+	// its own fields, and one that lacks them is dead-lettered as
+	// missing_attribution). Set per deployment in defaults and per
+	// experiment under experiments; control messages cannot change it.
+	// Default: indexed.
+	Attribution string `yaml:"attribution"`
 }
+
+// Attribution modes of ExperimentConfig.Attribution.
+const (
+	AttributionIndexed = "indexed"
+	AttributionCarried = "carried"
+)
 
 // MarshalYAML writes only the fields that are set, so that the written
 // form reads back to the same settings: in particular a nil Paused
@@ -232,13 +247,14 @@ func (e ExperimentConfig) MarshalYAML() (any, error) {
 		SettleLoss        *float64      `yaml:"settle_loss,omitempty"`
 		Paused            *[]string     `yaml:"paused,omitempty"`
 		Ended             bool          `yaml:"ended,omitempty"`
+		Attribution       string        `yaml:"attribution,omitempty"`
 	}
 	out := setFields{
 		Window: e.Window, Policy: e.Policy, Delay: e.Delay,
 		Floor: e.Floor, Cap: e.Cap, MaxChange: e.MaxChange,
 		BurnInClicks: e.BurnInClicks, BurnInConversions: e.BurnInConversions,
 		SettleProbability: e.SettleProbability, SettleLoss: e.SettleLoss,
-		Ended: e.Ended,
+		Ended: e.Ended, Attribution: e.Attribution,
 	}
 	if e.Paused != nil {
 		out.Paused = &e.Paused
@@ -381,6 +397,7 @@ func (e ExperimentConfig) WithDefaults() ExperimentConfig {
 	setDefault(&e.Window, estimator.DefaultWindow)
 	setDefault(&e.Policy, estimator.DefaultPolicy)
 	setDefault(&e.Delay, DefaultDelay)
+	setDefault(&e.Attribution, AttributionIndexed)
 	setDefaultPtr(&e.Floor, a.Floor)
 	setDefaultPtr(&e.Cap, a.Cap)
 	setDefaultPtr(&e.MaxChange, a.MaxChange)
@@ -416,6 +433,9 @@ func (base ExperimentConfig) overlay(o ExperimentConfig) ExperimentConfig {
 	if o.Delay != "" {
 		base.Delay = o.Delay
 	}
+	if o.Attribution != "" {
+		base.Attribution = o.Attribution
+	}
 	overlayPtr(&base.Floor, o.Floor)
 	overlayPtr(&base.Cap, o.Cap)
 	overlayPtr(&base.MaxChange, o.MaxChange)
@@ -450,6 +470,41 @@ func (c Config) ExperimentFor(id string) ExperimentConfig {
 		e = m.applyTo(e)
 	}
 	return e
+}
+
+// carried reports whether experiment id's conversions carry their
+// attribution (see ExperimentConfig.Attribution).
+func (c Config) carried(id string) bool {
+	return c.ExperimentFor(id).Attribution == AttributionCarried
+}
+
+// indexes reports whether any experiment may use the click index: the
+// default attribution or an experiment's is indexed.
+func (c Config) indexes() bool {
+	if c.Defaults.WithDefaults().Attribution == AttributionIndexed {
+		return true
+	}
+	for _, e := range c.Experiments {
+		if e.Attribution == AttributionIndexed {
+			return true
+		}
+	}
+	return false
+}
+
+// longestWindow is the longest attribution window the configuration
+// names (defaults and per-experiment settings): the click index's horizon.
+func (c Config) longestWindow() time.Duration {
+	w := c.Defaults.WithDefaults().Window
+	for _, e := range c.Experiments {
+		w = max(w, e.Window)
+	}
+	for _, m := range c.Control {
+		if d, err := estimator.ParseDuration(m.Window); err == nil {
+			w = max(w, d)
+		}
+	}
+	return w
 }
 
 // Validate reports every problem of c, which should have been through
@@ -624,6 +679,9 @@ func (e ExperimentConfig) problems(maxArms int) []error {
 	}
 	if !slices.Contains(DelayNames(), e.Delay) {
 		v.add("delay", "unknown delay family %q (valid: %s)", e.Delay, strings.Join(DelayNames(), ", "))
+	}
+	if e.Attribution != AttributionIndexed && e.Attribution != AttributionCarried {
+		v.add("attribution", "unknown attribution %q (valid: %s, %s)", e.Attribution, AttributionIndexed, AttributionCarried)
 	}
 	v.unit("floor", *e.Floor)
 	v.unit("cap", *e.Cap)

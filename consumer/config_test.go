@@ -335,6 +335,10 @@ func TestConfigValidate(t *testing.T) {
 		{"max change above 1", func(c *Config) { c.Defaults.MaxChange = ptr(1.5) }, "defaults.max_change: 1.5 not in [0, 1]"},
 		{"negative burn-in", func(c *Config) { c.Defaults.BurnInClicks = ptr(-1) }, "defaults.burn_in_clicks: -1 must not be negative"},
 		{"settle probability 0", func(c *Config) { c.Defaults.SettleProbability = ptr(0.0) }, "defaults.settle_probability: 0 not in (0, 1)"},
+		{"unknown attribution", func(c *Config) { c.Defaults.Attribution = "inferred" }, `defaults.attribution: unknown attribution "inferred" (valid: indexed, carried)`},
+		{"override attribution", func(c *Config) {
+			c.Experiments = map[string]ExperimentConfig{"mug-photo": {Attribution: "carried-ish"}}
+		}, `experiments["mug-photo"].attribution: unknown attribution "carried-ish"`},
 		{"paused twice", func(c *Config) {
 			c.Experiments = map[string]ExperimentConfig{"tea-towels": {Paused: []string{"red", "red"}}}
 		}, `experiments["tea-towels"].paused[1]: arm "red" listed twice`},

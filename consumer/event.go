@@ -86,6 +86,10 @@ const (
 	// ReasonCapExceeded: an event dropped because a join buffer is at its
 	// configured capacity (streaming join only).
 	ReasonCapExceeded Reason = "cap_exceeded"
+	// ReasonMissingAttribution: a conversion without experiment, arm or
+	// click_ts where conversions must carry their attribution (streaming
+	// join with attribution: carried only).
+	ReasonMissingAttribution Reason = "missing_attribution"
 )
 
 // RejectError is a rejected event. Callers retrieve it with errors.As and

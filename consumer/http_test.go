@@ -213,18 +213,19 @@ func TestMetricsNamesTypesAndLint(t *testing.T) {
 		typ    dto.MetricType
 		labels []string
 	}{
-		"ripen_events_consumed_total":       {dto.MetricType_COUNTER, []string{"topic"}},
-		"ripen_events_rejected_total":       {dto.MetricType_COUNTER, []string{"reason"}},
-		"ripen_deadletter_published_total":  {dto.MetricType_COUNTER, nil},
-		"ripen_flush_duration_seconds":      {dto.MetricType_HISTOGRAM, nil},
-		"ripen_refit_duration_seconds":      {dto.MetricType_HISTOGRAM, nil},
-		"ripen_consumer_lag":                {dto.MetricType_GAUGE, []string{"partition", "topic"}},
-		"ripen_allocations_published_total": {dto.MetricType_COUNTER, nil},
-		"ripen_watermark_seconds":           {dto.MetricType_GAUGE, nil},
-		"ripen_redis_up":                    {dto.MetricType_GAUGE, nil},
-		"ripen_experiments":                 {dto.MetricType_GAUGE, nil},
-		"ripen_holdback_overflows_total":    {dto.MetricType_COUNTER, nil},
-		"ripen_orphans_parked_total":        {dto.MetricType_COUNTER, nil},
+		"ripen_events_consumed_total":        {dto.MetricType_COUNTER, []string{"topic"}},
+		"ripen_events_rejected_total":        {dto.MetricType_COUNTER, []string{"reason"}},
+		"ripen_deadletter_published_total":   {dto.MetricType_COUNTER, nil},
+		"ripen_flush_duration_seconds":       {dto.MetricType_HISTOGRAM, nil},
+		"ripen_flush_stage_duration_seconds": {dto.MetricType_HISTOGRAM, []string{"stage"}},
+		"ripen_refit_duration_seconds":       {dto.MetricType_HISTOGRAM, nil},
+		"ripen_consumer_lag":                 {dto.MetricType_GAUGE, []string{"partition", "topic"}},
+		"ripen_allocations_published_total":  {dto.MetricType_COUNTER, nil},
+		"ripen_watermark_seconds":            {dto.MetricType_GAUGE, nil},
+		"ripen_redis_up":                     {dto.MetricType_GAUGE, nil},
+		"ripen_experiments":                  {dto.MetricType_GAUGE, nil},
+		"ripen_holdback_overflows_total":     {dto.MetricType_COUNTER, nil},
+		"ripen_orphans_parked_total":         {dto.MetricType_COUNTER, nil},
 	}
 	fams, err := reg.Gather()
 	if err != nil {

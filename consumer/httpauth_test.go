@@ -156,6 +156,7 @@ func TestSettingsSources(t *testing.T) {
 		"floor":                {Value: "0.05", Source: SourceOverride},
 		"policy":               {Value: "top-two", Source: SourceDefaults},
 		"cap":                  {Value: "1", Source: SourceBuiltIn},
+		"attribution":          {Value: "indexed", Source: SourceBuiltIn},
 		"pipeline.refit_every": {Value: "15m", Source: SourcePipeline},
 	} {
 		if g := got[key]; g.Value != want.Value || g.Source != want.Source {

@@ -37,6 +37,22 @@ func (s *Service) consume(ctx context.Context, cfg Config) error {
 	if err != nil {
 		return err
 	}
+	if cfg.indexes() {
+		// The index's horizon is the longest window configured; an
+		// experiment with a longer one raises it when its clicks come.
+		if err := s.retry(ctx, "open click index", func(ctx context.Context) error {
+			_, err := s.store.OpenClickIndex(ctx, state.ClickIndexOptions{
+				Horizon:        cfg.longestWindow(),
+				ProgressTopics: []string{cfg.Kafka.ClickTopic, cfg.Kafka.ConversionTopic},
+			})
+			return err
+		}); err != nil {
+			if ctx.Err() != nil {
+				return nil
+			}
+			return err
+		}
+	}
 	group, err := kafka.NewConsumerGroup(kafka.ConsumerGroupConfig{
 		ID:                cfg.Kafka.Group,
 		Brokers:           cfg.Kafka.Brokers,
@@ -165,7 +181,7 @@ func (s *Service) runGeneration(ctx context.Context, dialer *kafka.Dialer, gen *
 		s: s, id: base + gen.ID, assigned: assigned,
 		exps: map[string]*expInfo{}, capped: map[string]bool{},
 		commit: gen.CommitOffsets, meta: meta, own: map[state.TopicPartition]*ownedPart{},
-		times: unknownTimes, swept: map[state.TopicPartition]int64{},
+		times: unknownTimes, swept: map[state.TopicPartition]int64{}, retiredAt: noTime, retireNext: noTime,
 	}
 	for _, tp := range assigned {
 		// A partition with nothing to read is caught up from the start.
@@ -346,9 +362,10 @@ func (s *Service) pipeline(ctx, genCtx context.Context, gen *kafka.Generation, d
 }
 
 // step is one round of the pipeline: read the group's progress, apply the
-// held events the boundary lets through, sweep due orphans, report this
-// instance's progress, and run the refits this instance owns that the
-// group is ready for.
+// held events the boundary lets through, sweep due orphans, retire the
+// click index generations the group is done with, report this instance's
+// progress, and run the refits this instance owns that the group is
+// ready for.
 func (g *genState) step(ctx context.Context) error {
 	s := g.s
 	cfg := s.config()
@@ -372,6 +389,9 @@ func (g *genState) step(ctx context.Context) error {
 		return err
 	}
 	if err := g.sweep(ctx); err != nil {
+		return err
+	}
+	if err := g.retire(ctx); err != nil {
 		return err
 	}
 	for _, topic := range []string{cfg.Kafka.ClickTopic, cfg.Kafka.ConversionTopic} {

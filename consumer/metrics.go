@@ -17,6 +17,11 @@ type Metrics struct {
 	DeadLetterPublished prometheus.Counter
 	// FlushDuration observes the wall time of one batch flush to Redis.
 	FlushDuration prometheus.Histogram
+	// FlushStageDuration observes the wall time of each stage of a flush,
+	// by stage: join (decode, click index, lookups), delta (per-experiment
+	// deltas) and apply (Redis apply with offsets, dead letters, resume
+	// offsets, commit).
+	FlushStageDuration *prometheus.HistogramVec
 	// RefitDuration observes the wall time of one experiment's refit.
 	RefitDuration prometheus.Histogram
 	// ConsumerLag is, per topic and partition, the partition's end offset
@@ -40,6 +45,13 @@ type Metrics struct {
 	OrphansParked prometheus.Counter
 }
 
+// Stages of a flush, the label values of FlushStageDuration.
+const (
+	stageJoin  = "join"
+	stageDelta = "delta"
+	stageApply = "apply"
+)
+
 // knownReasons are the rejection reasons pre-set to zero in EventsRejected
 // so their series exist before the first rejection.
 var knownReasons = []Reason{
@@ -48,7 +60,7 @@ var knownReasons = []Reason{
 	ReasonBadTimestamp, ReasonAbsurdTimestamp, ReasonDuplicateClick, ReasonUnknownClick,
 	ReasonAttributionMismatch, ReasonConversionBeforeClick, ReasonConversionAfterWindow,
 	ReasonDuplicateConversion, ReasonOrphanExpired, ReasonCapExceeded, ReasonLayoutMismatch,
-	ReasonBadControl,
+	ReasonBadControl, ReasonMissingAttribution,
 }
 
 // NewMetrics creates the metrics and registers them on reg, panicking (as
@@ -74,6 +86,12 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 			// 1ms to about 16s.
 			Buckets: prometheus.ExponentialBuckets(0.001, 2, 15),
 		}),
+		FlushStageDuration: prometheus.NewHistogramVec(prometheus.HistogramOpts{
+			Name: "ripen_flush_stage_duration_seconds",
+			Help: "Wall time of one stage (join, delta, apply) of a batch flush.",
+			// 0.1ms to about 3s.
+			Buckets: prometheus.ExponentialBuckets(0.0001, 2, 15),
+		}, []string{"stage"}),
 		RefitDuration: prometheus.NewHistogram(prometheus.HistogramOpts{
 			Name: "ripen_refit_duration_seconds",
 			Help: "Wall time of one experiment refit.",
@@ -112,9 +130,12 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 	for _, r := range knownReasons {
 		m.EventsRejected.WithLabelValues(string(r))
 	}
+	for _, st := range []string{stageJoin, stageDelta, stageApply} {
+		m.FlushStageDuration.WithLabelValues(st)
+	}
 	if reg != nil {
 		reg.MustRegister(m.EventsConsumed, m.EventsRejected, m.DeadLetterPublished,
-			m.FlushDuration, m.RefitDuration, m.ConsumerLag, m.AllocationsPublished,
+			m.FlushDuration, m.FlushStageDuration, m.RefitDuration, m.ConsumerLag, m.AllocationsPublished,
 			m.Watermark, m.RedisUp, m.Experiments, m.HoldbackOverflows, m.OrphansParked)
 	}
 	return m

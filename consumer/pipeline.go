@@ -4,7 +4,6 @@ import (
 	"context"
 	"errors"
 	"fmt"
-	"math"
 	"slices"
 	"strconv"
 	"strings"
@@ -48,6 +47,12 @@ type genState struct {
 	// swept is the last tick through which each owned conversion
 	// partition's due orphans were settled (from its record at first).
 	swept map[state.TopicPartition]int64
+	// carriedOf caches Config.carried by experiment (see carried).
+	carriedOf map[string]bool
+	// retiredAt is the watermark of the last click index retirement this
+	// generation ran (noTime before the first), retireNext the watermark
+	// from which it can retire again (noTime: unknown).
+	retiredAt, retireNext int64
 }
 
 // ownedPart is what the generation tracks of one assigned partition.
@@ -126,18 +131,6 @@ func partitionHoldCap(cfg Config, partitions int) int {
 	return max(1, cfg.Pipeline.HoldbackCap/max(1, partitions))
 }
 
-// clickEvent and convEvent are decoded events with where they were read.
-type clickEvent struct {
-	m   fetched
-	c   Click
-	org string // origin(m.tp, m.offset)
-}
-
-type convEvent struct {
-	m fetched
-	v Conversion
-}
-
 // flushResult summarises one flush, for logs and tests.
 type flushResult struct {
 	events, deadLetters, deltas int
@@ -168,20 +161,27 @@ func (g *genState) receive(m fetched, cfg Config, now time.Time) {
 // hold-back boundary (undecodable messages pass), and returns them as a
 // batch. Holding back by prefix keeps each partition's applied offsets
 // contiguous and makes what a refit sees a function of the partition logs
-// alone. While the boundary is unknown everything is held. A partition
-// holding its share of pipeline.holdback_cap has its reader paused until
-// it holds less; if more than the cap is held all the same, everything is
-// released (overflow reports that), trading determinism for bounded
-// memory.
+// alone. While the boundary is unknown everything is held. Conversions of
+// experiments that use the click index are held, too, until every click
+// partition has applied its events through their time, so that they find
+// their click indexed rather than wait for it in Redis (when the click
+// topic is read behind the conversion topic, as in a replay or after a
+// pause). A partition holding its share of pipeline.holdback_cap has its
+// reader paused until it holds less; if more than the cap is held all the
+// same, everything is released (overflow reports that), trading
+// determinism (and the join's economy) for bounded memory.
 func (g *genState) release(cfg Config) (b *batch, overflow bool) {
 	b = newBatch()
 	overflow = g.heldTotal > cfg.Pipeline.HoldbackCap
 
-	bound := g.times.boundary
 	for _, tp := range g.assigned {
 		p := g.own[tp]
 		if p == nil {
 			continue
+		}
+		bound := g.times.boundary
+		if tp.Topic == cfg.Kafka.ConversionTopic && cfg.indexes() && bound != noTime {
+			bound = min(bound, g.times.clicksApplied) // noTime holds them all
 		}
 		n := 0
 		for n < len(p.held) {
@@ -225,363 +225,42 @@ func (g *genState) progress(cfg Config, now time.Time) map[string][]state.Partit
 	return out
 }
 
-// flush turns one batch into per-experiment deltas, applies them with the
-// offsets they cover, writes the batch's dead letters, records the resume
-// offsets and commits them to Kafka, in that order. Redis failures are
-// retried (never dropped) until ctx ends.
+// flush runs a batch through the three stages of the join path, in the
+// order the data flows: join (join.go) decodes, checks and joins its
+// events through the click index; delta (delta.go) turns what counts into
+// one delta per experiment; apply (apply.go) applies each delta with the
+// offsets it covers, writes the dead letters, records the resume offsets
+// and commits them to Kafka. Redis failures are retried (never dropped)
+// until ctx ends.
 func (g *genState) flush(ctx context.Context, b *batch) (flushResult, error) {
 	var res flushResult
 	if b.len() == 0 {
 		return res, nil
 	}
-	s := g.s
 	start := time.Now()
-	cfg := s.config()
-	// Original bytes of the parked conversions that clicks claim, by
-	// origin; those of the batch's messages are found in the batch. For
-	// dead letters.
-	raw := map[string][]byte{}
-	rawOf := func(org string) []byte {
-		if v, ok := raw[org]; ok {
-			return v
+	stage := func(name string, since time.Time) time.Time {
+		now := time.Now()
+		if m := g.s.metrics; m != nil {
+			m.FlushStageDuration.WithLabelValues(name).Observe(now.Sub(since).Seconds())
 		}
-		if tp, off, err := parseOrigin(org); err == nil {
-			if v, ok := b.value(tp, off); ok {
-				return v
-			}
-		}
-		return nil
+		return now
 	}
-	var dls []DeadLetter
-	refuse := func(org string, rej *RejectError) {
-		dls = append(dls, s.deadLetter(org, rawOf(org), rej))
-	}
-
-	clicks := make([]clickEvent, 0, len(b.msgs))
-	var convs []convEvent
-	fallback := int64(math.MaxInt64)
-	consumed := map[string]int{} // messages per topic, for the metric
-	for _, m := range b.msgs {
-		consumed[m.tp.Topic]++
-		var rej *RejectError
-		switch m.tp.Topic {
-		case cfg.Kafka.ClickTopic:
-			d := m.dec
-			if d == nil {
-				d = &decoded{}
-				d.click, d.err = DecodeClick(m.value)
-			}
-			if errors.As(d.err, &rej) {
-				break
-			}
-			c := d.click
-			if rej = checkStorable(c.Experiment); rej != nil {
-				break
-			}
-			fallback = min(fallback, c.TS)
-			clicks = append(clicks, clickEvent{m: m, c: c, org: origin(m.tp, m.offset)})
-		case cfg.Kafka.ConversionTopic:
-			d := m.dec
-			if d == nil {
-				d = &decoded{}
-				d.conv, d.err = DecodeConversion(m.value)
-			}
-			if errors.As(d.err, &rej) {
-				break
-			}
-			v := d.conv
-			if v.Experiment != "" {
-				if rej = checkStorable(v.Experiment); rej != nil {
-					break
-				}
-			}
-			fallback = min(fallback, v.TS)
-			convs = append(convs, convEvent{m, v})
-		default:
-			rej = reject(ReasonMalformedJSON, "message from unexpected topic %q", m.tp.Topic)
-		}
-		if rej != nil {
-			refuse(origin(m.tp, m.offset), rej)
-		}
-	}
-	if s.metrics != nil {
-		for topic, n := range consumed {
-			s.metrics.EventsConsumed.WithLabelValues(topic).Add(float64(n))
-		}
-	}
-	// While the watermark is unknown (some partition has not reported),
-	// keys are computed at the batch's earliest time minus the lateness;
-	// keys computed early are merely finer than canonical, and reading
-	// re-keys them.
-	db := newDeltaBuilder(g.times.keyWatermark(fallback-cfg.Pipeline.Lateness.Milliseconds()), g.id)
-
-	// Clicks: index them (once per click id), taking the conversions that
-	// waited for them.
-	records := make([]state.ClickRecord, 0, len(clicks))
-	indexed := make([]clickEvent, 0, len(clicks))
-	for _, ce := range clicks {
-		e, rej, err := g.experiment(ctx, cfg, ce.c.Experiment, ce.c.Arm)
-		if err != nil {
-			return res, err
-		}
-		if rej != nil {
-			refuse(ce.org, rej)
-			continue
-		}
-		if e.seen(ce.m.tp, ce.m.offset) {
-			continue
-		}
-		records = append(records, state.ClickRecord{ClickID: ce.c.ClickID, Experiment: ce.c.Experiment, Arm: ce.c.Arm, TS: ce.c.TS, Window: e.layout.Window, Origin: ce.org})
-		indexed = append(indexed, ce)
-	}
-	// Conversions: join to indexed clicks or park until the click comes.
-	lookups := make([]state.ConversionLookup, len(convs))
-	for i, cv := range convs {
-		lookups[i] = state.ConversionLookup{
-			ClickID: cv.v.ClickID, TS: cv.v.TS, Origin: origin(cv.m.tp, cv.m.offset), Raw: cv.m.value,
-			Topic: cv.m.tp.Topic, Partition: cv.m.tp.Partition,
-			Deadline: cv.v.TS + cfg.Pipeline.OrphanTTL.Milliseconds(),
-		}
-	}
-	// The clicks are indexed while the conversions whose click is not in
-	// this batch are looked up, so that Redis works on one while the
-	// other is encoded or decoded; the conversions of this batch's clicks
-	// are looked up after the clicks are indexed, so that they join
-	// directly rather than park (and take room in the orphan buffer).
-	inBatch := make(map[string]bool, len(records))
-	for _, r := range records {
-		inBatch[r.ClickID] = true
-	}
-	var early, late []int // indices into lookups
-	for i, l := range lookups {
-		if inBatch[l.ClickID] {
-			late = append(late, i)
-		} else {
-			early = append(early, i)
-		}
-	}
-	found := make([]state.LookupResult, len(lookups))
-	lookup := func(idx []int) error {
-		if len(idx) == 0 {
-			return nil
-		}
-		part := make([]state.ConversionLookup, len(idx))
-		for j, i := range idx {
-			part[j] = lookups[i]
-		}
-		return s.retry(ctx, "lookup conversions", func(ctx context.Context) error {
-			got, err := s.store.LookupConversions(ctx, part)
-			if err != nil {
-				return err
-			}
-			for j, i := range idx {
-				found[i] = got[j]
-			}
-			return nil
-		})
-	}
-	var put []state.ClickResult
-	var putErr error
-	var wg sync.WaitGroup
-	wg.Go(func() {
-		putErr = s.retry(ctx, "put clicks", func(ctx context.Context) error {
-			var err error
-			put, err = s.store.IndexClicks(ctx, records)
-			return err
-		})
-	})
-	lookErr := lookup(early)
-	wg.Wait()
-	if err := errors.Join(putErr, lookErr); err != nil {
-		return res, err
-	}
-	if err := lookup(late); err != nil {
-		return res, err
-	}
-	for i, r := range put {
-		ce := indexed[i]
-		org := ce.org
-		e := g.exps[ce.c.Experiment]
-		if r.Status == state.ClickDuplicate {
-			refuse(org, reject(ReasonDuplicateClick, "click_id %q already seen (%s)", ce.c.ClickID, r.Existing.Origin))
-			continue
-		}
-		db.click(e, ce.c.Arm, ce.m.tp, ce.m.offset, ce.org, ce.c.TS)
-		o := r.Orphan
-		if o == nil {
-			continue
-		}
-		raw[o.Origin] = o.Raw
-		v, err := DecodeConversion(o.Raw)
-		var rej *RejectError
-		if errors.As(err, &rej) {
-			refuse(o.Origin, rej)
-			continue
-		}
-		if rej := checkJoin(v, ce.c.Experiment, ce.c.Arm, ce.c.TS, e.windowMs); rej != nil {
-			refuse(o.Origin, rej)
-			continue
-		}
-		db.conversion(e, ce.c.Arm, o.ClickID, o.Origin, ce.m.tp, ce.m.offset, ce.c.TS, v.TS, false)
-	}
-
-	// Conversions: joined to their clicks, or parked until the click comes.
-	for i, r := range found {
-		cv, org := convs[i], lookups[i].Origin
-		switch r.Status {
-		case state.LookupFound:
-			e, rej, err := g.experiment(ctx, cfg, r.Click.Experiment, r.Click.Arm)
-			if err != nil {
-				return res, err
-			}
-			if rej != nil {
-				refuse(org, rej)
-				continue
-			}
-			if e.seen(cv.m.tp, cv.m.offset) {
-				continue
-			}
-			db.touch(e)
-			if rej := checkJoin(cv.v, r.Click.Experiment, r.Click.Arm, r.Click.TS, e.windowMs); rej != nil {
-				refuse(org, rej)
-				continue
-			}
-			db.conversion(e, r.Click.Arm, cv.v.ClickID, org, cv.m.tp, cv.m.offset, r.Click.TS, cv.v.TS, false)
-		case state.LookupParked:
-			// Joined when the click comes, or settled by the sweep.
-			if s.metrics != nil {
-				s.metrics.OrphansParked.Inc()
-			}
-		case state.LookupParkedBefore:
-			// A redelivery of a conversion already parked.
-		case state.LookupDuplicate:
-			refuse(org, reject(ReasonDuplicateConversion, "click %q already has a conversion waiting for it (%s)", cv.v.ClickID, r.Origin))
-		case state.LookupCapExceeded:
-			refuse(org, reject(ReasonCapExceeded, "partition %s has limits.max_orphans_per_partition conversions waiting for their clicks", cv.m.tp))
-		default:
-			return res, fmt.Errorf("lookup conversion %s: unexpected status %v", org, r.Status)
-		}
-	}
-
-	// Apply, experiment by experiment, each with the offsets it covers.
-	n, err := g.apply(ctx, db, b, refuse)
+	j, err := g.join(ctx, b)
 	if err != nil {
 		return res, err
 	}
-	res.deltas = n
-	res.events = b.len()
-	res.deadLetters = len(dls)
-
-	if err := s.retry(ctx, "write dead letters", func(ctx context.Context) error {
-		return s.deadLetters.write(ctx, dls)
-	}); err != nil {
+	t := stage(stageJoin, start)
+	db := g.delta(j)
+	t = stage(stageDelta, t)
+	n, err := g.applyBatch(ctx, j, db)
+	if err != nil {
 		return res, err
 	}
-	commit := map[string]map[int]int64{}
-	for _, tp := range b.order {
-		next := b.ranges[tp].To + 1
-		if err := s.retry(ctx, "set resume", func(ctx context.Context) error {
-			return s.store.SetResume(ctx, tp.Topic, tp.Partition, next)
-		}); err != nil {
-			return res, err
-		}
-		if commit[tp.Topic] == nil {
-			commit[tp.Topic] = map[int]int64{}
-		}
-		commit[tp.Topic][tp.Partition] = next
+	stage(stageApply, t)
+	if m := g.s.metrics; m != nil {
+		m.FlushDuration.Observe(time.Since(start).Seconds())
 	}
-	if g.commit != nil {
-		if err := g.commit(commit); err != nil {
-			// Redis holds the authoritative resume offsets; the Kafka
-			// commit only serves lag monitoring.
-			s.log.Warn("commit offsets to Kafka", zap.Int32("generation", g.id), zap.Error(err))
-		}
-	}
-	if s.metrics != nil {
-		s.metrics.FlushDuration.Observe(time.Since(start).Seconds())
-		for _, tp := range b.order {
-			last := b.lastOf(tp)
-			s.metrics.ConsumerLag.WithLabelValues(tp.Topic, strconv.Itoa(tp.Partition)).Set(float64(max(0, last.hwm-last.offset-1)))
-		}
-	}
-	return res, nil
-}
-
-// apply applies the deltas of db (covering batch b, or no offsets when b
-// is nil) and returns how many were applied. A delta refused as
-// overlapping applied offsets (a zombie's late write, or another writer,
-// made the cached offsets stale) is rebuilt from the experiment's stored
-// offsets, without the events they cover, and retried; refused by a newer
-// generation, it ends the generation.
-func (g *genState) apply(ctx context.Context, db *deltaBuilder, b *batch, refuse func(string, *RejectError)) (int, error) {
-	s := g.s
-	applied := 0
-	for _, id := range db.ids() {
-		d := db.build(id, b)
-		var ar state.ApplyResult
-		var err error
-		for attempt := 1; d != nil; attempt++ {
-			err = s.retry(ctx, "apply", func(ctx context.Context) error {
-				var err error
-				ar, err = s.store.Apply(ctx, d)
-				return err
-			})
-			if !errors.Is(err, state.ErrOverlap) || attempt == overlapAttempts {
-				break
-			}
-			s.log.Warn("delta overlaps applied offsets; reloading them", zap.String("experiment", id), zap.Int("attempt", attempt), zap.Error(err))
-			var offs map[state.TopicPartition]state.AppliedOffset
-			if err := s.retry(ctx, "offsets", func(ctx context.Context) error {
-				var err error
-				offs, err = s.store.Offsets(ctx, id)
-				return err
-			}); err != nil {
-				return applied, err
-			}
-			e := db.exps[id]
-			for tp, ao := range offs {
-				if last, ok := e.applied[tp]; !ok || ao.Offset > last {
-					e.applied[tp] = ao.Offset
-				}
-			}
-			d = db.build(id, b)
-		}
-		if d == nil {
-			continue // everything it covered was applied by another writer
-		}
-		switch {
-		case errors.Is(err, state.ErrFenced):
-			return applied, fmt.Errorf("experiment %q: %w: %w (if this repeats after every rejoin, the consumer group was probably deleted or recreated and its generation ids restarted below the stored ones: stop every other writer of this Redis prefix and run ripen run --reset-fencing once)", id, errFenced, err)
-		case errors.Is(err, state.ErrLayoutMismatch):
-			// Refuse this experiment's events; reload its stored layout
-			// for the next batch.
-			s.log.Error("experiment stored with another layout", zap.String("experiment", id), zap.Error(err))
-			delete(g.exps, id)
-			for _, org := range db.origins(id) {
-				refuse(org, reject(ReasonLayoutMismatch, "experiment %q is stored with another layout than %+v", id, d.Layout))
-			}
-			continue
-		case err != nil:
-			// The cached records are stale; forget them so that the next
-			// generation reloads them.
-			delete(g.exps, id)
-			return applied, fmt.Errorf("apply experiment %q: %w", id, err)
-		}
-		applied++
-		e := db.exps[id]
-		for _, r := range d.Ranges {
-			e.applied[state.TopicPartition{Topic: r.Topic, Partition: r.Partition}] = r.To
-		}
-		for _, dup := range ar.Duplicates {
-			refuse(dup.Conversion.Origin, reject(ReasonDuplicateConversion, "click %q already converted (%s)", dup.Conversion.ClickID, dup.CountedOrigin))
-		}
-		if s.hooks.afterApply != nil {
-			if err := s.hooks.afterApply(id); err != nil {
-				return applied, err
-			}
-		}
-	}
-	return applied, nil
+	return flushResult{events: b.len(), deadLetters: len(j.dls), deltas: n}, nil
 }
 
 // sweep settles, for every owned conversion partition, the parked orphans
@@ -669,6 +348,53 @@ func (g *genState) sweep(ctx context.Context) error {
 	}
 	return nil
 }
+
+// retire deletes the click index generations the group is done with (see
+// state.Store.RetireClickIndex). The owner of the click topic's first
+// partition does it, at the time every partition applied its events through and every partition,
+// idle ones included, has seen, less the lateness: an event still to come
+// lies after that (as long as none is more than the lateness out of order
+// within its partition), so no conversion still to come needs a
+// generation retired then; the index's slack (state.Options.ClickTTLSlack)
+// covers conversions later than that. A partition that stops receiving
+// events holds retirement back until it gets events again. It calls again
+// once the watermark reaches the time the last call said the next
+// generation can go, or retireEvery refit periods later.
+func (g *genState) retire(ctx context.Context) error {
+	s := g.s
+	cfg := s.config()
+	gt := g.times
+	if !cfg.indexes() || gt.watermark == noTime || gt.applied == noTime || gt.oldestSeen == noTime {
+		return nil
+	}
+	if !slices.Contains(g.assigned, state.TopicPartition{Topic: cfg.Kafka.ClickTopic, Partition: 0}) {
+		return nil
+	}
+	wm := min(gt.watermark, min(gt.applied, gt.oldestSeen)-cfg.Pipeline.Lateness.Milliseconds())
+	due := g.retiredAt == noTime || wm >= g.retiredAt+retireEvery*cfg.Pipeline.RefitEvery.Milliseconds() ||
+		(g.retireNext != noTime && wm >= g.retireNext)
+	if !due {
+		return nil
+	}
+	var res state.RetireResult
+	if err := s.retry(ctx, "retire click index", func(ctx context.Context) error {
+		var err error
+		res, err = s.store.RetireClickIndex(ctx, wm)
+		return err
+	}); err != nil {
+		return err
+	}
+	if len(res.Generations) > 0 {
+		s.log.Debug("click index generations retired", zap.Int64s("generations", res.Generations), zap.Int("keys", res.Keys), zap.Int64("watermark", wm))
+	}
+	g.retiredAt, g.retireNext = wm, res.Next
+	return nil
+}
+
+// retireEvery is how many refit periods of event time may pass between
+// retirements when the last one named no next time (or a generation
+// appeared since that ends earlier).
+const retireEvery = 4
 
 // settleOrphan handles a conversion whose click never came: one that
 // carries its own attribution is counted with its click (as BuildOffline

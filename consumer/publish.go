@@ -248,10 +248,10 @@ func (s *Service) refit(ctx context.Context, id string, tick int64) error {
 	if len(ex.Arms) == 0 {
 		return nil
 	}
-	// Whatever the refit's outcome, rewrite the arm hashes into canonical
-	// form afterwards, so that they stay compact (events keyed at an early
-	// watermark land in fine buckets).
-	defer s.compactArms(ctx, id, ex.Arms)
+	// Whatever the refit's outcome, fold the records the arms received
+	// since their last compaction into their bases afterwards, so that the
+	// next loads read less (Apply bounds them in any case).
+	defer s.compactLoaded(ctx, ex)
 	asOf := max(tick, ex.Watermark)
 	alloc, err := ec.AllocationOptions()
 	if err != nil {
@@ -306,25 +306,19 @@ func (s *Service) refit(ctx context.Context, id string, tick int64) error {
 	return s.publish(ctx, id, asOf, rep)
 }
 
-// compactArms rewrites each arm hash of experiment id into canonical form
-// (state.Store.Compact). It never fails the refit: a compare-and-set that
-// kept losing to concurrent writers (a retriable state.ErrConflict) is
-// left for the next tick, and any other error is logged.
-func (s *Service) compactArms(ctx context.Context, id string, arms []string) {
-	for _, arm := range arms {
-		res, err := s.store.Compact(ctx, id, arm)
-		switch {
-		case errors.Is(err, state.ErrConflict) && state.IsRetriable(err):
-			s.log.Debug("compaction raced writers; next tick tries again", zap.String("experiment", id), zap.String("arm", arm), zap.Int("attempts", res.Attempts))
-		case err != nil:
-			if ctx.Err() != nil {
-				return
-			}
-			s.log.Warn("compact arm", zap.String("experiment", id), zap.String("arm", arm), zap.Error(err))
-		default:
-			s.log.Debug("arm compacted", zap.String("experiment", id), zap.String("arm", arm), zap.Int("fields_before", res.FieldsBefore), zap.Int("fields_after", res.FieldsAfter))
+// compactLoaded folds the arm hashes of the loaded experiment ex into
+// their bases (state.Store.CompactLoaded). It never fails the refit: an
+// arm written since the load is left for the next tick, and an error is
+// logged.
+func (s *Service) compactLoaded(ctx context.Context, ex *state.Experiment) {
+	done, err := s.store.CompactLoaded(ctx, ex)
+	if err != nil {
+		if ctx.Err() == nil {
+			s.log.Warn("compact arms", zap.String("experiment", ex.ID), zap.Error(err))
 		}
+		return
 	}
+	s.log.Debug("arms compacted", zap.String("experiment", ex.ID), zap.Strings("arms", done))
 }
 
 // republish writes the stored allocation prev to the allocation topic

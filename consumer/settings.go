@@ -95,6 +95,7 @@ func (s ExperimentSettings) Fields() []SettingField {
 		{"settle_loss", f64(e.SettleLoss), func(x ExperimentConfig) bool { return x.SettleLoss != nil }, neq(s.defaults.SettleLoss, builtIn.SettleLoss)},
 		{"paused", fmtList(e.Paused), func(x ExperimentConfig) bool { return x.Paused != nil }, s.defaults.Paused != nil},
 		{"ended", strconv.FormatBool(e.Ended), func(x ExperimentConfig) bool { return x.Ended }, s.defaults.Ended},
+		{"attribution", e.Attribution, func(x ExperimentConfig) bool { return x.Attribution != "" }, s.defaults.Attribution != builtIn.Attribution},
 	}
 	out := make([]SettingField, 0, len(fields)+3)
 	for _, f := range fields {

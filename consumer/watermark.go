@@ -36,15 +36,24 @@ const forever = int64(math.MaxInt64)
 //     tick whose refits every click partition's owner completed; events
 //     after it are held back (see genState.release). Unknown until every
 //     click partition's owner marked a tick.
+//   - oldestSeen: the minimum over every partition, idle ones included, of
+//     the latest event time seen. Unlike the watermark it does not run
+//     ahead when the busy partitions are caught up: a quiet partition may
+//     still bring events of its own time (see genState.retire).
+//   - clicksApplied: the minimum over the click partitions of the time
+//     through which each applied its events: conversions up to it find
+//     their click indexed (see genState.release).
 type groupTimes struct {
-	watermark int64
-	applied   int64
-	swept     int64
-	boundary  int64
+	watermark     int64
+	applied       int64
+	swept         int64
+	boundary      int64
+	oldestSeen    int64
+	clicksApplied int64
 }
 
 // unknownTimes is a groupTimes that knows nothing.
-var unknownTimes = groupTimes{watermark: noTime, applied: noTime, swept: noTime, boundary: noTime}
+var unknownTimes = groupTimes{watermark: noTime, applied: noTime, swept: noTime, boundary: noTime, oldestSeen: noTime, clicksApplied: noTime}
 
 // partitionMeta is what the generation knows of every partition of the
 // input topics.
@@ -65,8 +74,8 @@ type partitionMeta struct {
 func computeGroupTimes(meta partitionMeta, prog map[string]map[int]state.PartitionProgress, latenessMs, periodMs, prev int64) groupTimes {
 	gt := unknownTimes
 	gt.watermark = prev
-	low, high := forever, noTime
-	applied, swept := forever, forever
+	low, high, oldest := forever, noTime, forever
+	applied, swept, clicks := forever, forever, forever
 	active, known, appliedKnown, sweptKnown := false, true, true, true
 	for _, tp := range meta.all {
 		rec, ok := prog[tp.Topic][tp.Partition]
@@ -77,10 +86,14 @@ func computeGroupTimes(meta partitionMeta, prog map[string]map[int]state.Partiti
 			continue
 		}
 		high = max(high, rec.Seen)
+		oldest = min(oldest, rec.Seen)
 		if rec.Applied == noTime {
 			appliedKnown = false
 		} else {
 			applied = min(applied, rec.Applied)
+			if tp.Topic == meta.clickTopic {
+				clicks = min(clicks, rec.Applied)
+			}
 		}
 		if tp.Topic != meta.clickTopic {
 			if rec.Swept == noTime {
@@ -106,6 +119,12 @@ func computeGroupTimes(meta partitionMeta, prog map[string]map[int]state.Partiti
 	}
 	if known && appliedKnown && applied != forever {
 		gt.applied = applied
+	}
+	if known && oldest != forever {
+		gt.oldestSeen = oldest
+	}
+	if known && appliedKnown {
+		gt.clicksApplied = clicks // forever when no click partition reported
 	}
 	if known && sweptKnown {
 		gt.swept = swept // forever when no conversion partition reported

@@ -30,19 +30,19 @@ func TestGroupTimes(t *testing.T) {
 		{"a non-empty partition not reported holds everything",
 			recs{c0: rec(10_000, 5_000, noTime, false)}, noTime, unknownTimes},
 		{"minimum over the group minus lateness; empty partition left out",
-			recs{c0: rec(10_000, 5_000, noTime, false), v0: swept(rec(7_000, 4_000, noTime, false), 2_700)}, noTime, groupTimes{6_000, 4_000, 2_700, noTime}},
-		{"idle partition left out of the watermark, not of applied",
-			recs{c0: rec(10_000, 5_000, noTime, false), v0: rec(3_000, 2_000, noTime, true)}, noTime, groupTimes{9_000, 2_000, noTime, noTime}},
+			recs{c0: rec(10_000, 5_000, noTime, false), v0: swept(rec(7_000, 4_000, noTime, false), 2_700)}, noTime, groupTimes{6_000, 4_000, 2_700, noTime, 7_000, 5_000}},
+		{"idle partition left out of the watermark, not of applied or the oldest seen",
+			recs{c0: rec(10_000, 5_000, noTime, false), v0: rec(3_000, 2_000, noTime, true)}, noTime, groupTimes{9_000, 2_000, noTime, noTime, 3_000, 5_000}},
 		{"all idle: latest time anywhere, no lateness",
-			recs{c0: rec(10_000, 5_000, noTime, true), v0: rec(12_000, 6_000, noTime, true)}, noTime, groupTimes{12_000, 5_000, noTime, noTime}},
+			recs{c0: rec(10_000, 5_000, noTime, true), v0: rec(12_000, 6_000, noTime, true)}, noTime, groupTimes{12_000, 5_000, noTime, noTime, 10_000, 5_000}},
 		{"never backwards",
-			recs{c0: rec(10_000, 5_000, noTime, false), v0: rec(7_000, 4_000, noTime, false)}, 8_000, groupTimes{8_000, 4_000, noTime, noTime}},
+			recs{c0: rec(10_000, 5_000, noTime, false), v0: rec(7_000, 4_000, noTime, false)}, 8_000, groupTimes{8_000, 4_000, noTime, noTime, 7_000, 5_000}},
 		{"applied unknown while a partition did not report it",
-			recs{c0: rec(10_000, noTime, noTime, false), v0: rec(7_000, 4_000, noTime, false)}, noTime, groupTimes{6_000, noTime, noTime, noTime}},
+			recs{c0: rec(10_000, noTime, noTime, false), v0: rec(7_000, 4_000, noTime, false)}, noTime, groupTimes{6_000, noTime, noTime, noTime, 7_000, noTime}},
 		{"boundary needs every click partition's refit mark, empty ones too",
-			recs{c0: rec(10_000, 5_000, 3_600, false), v0: rec(7_000, 4_000, noTime, false)}, noTime, groupTimes{6_000, 4_000, noTime, noTime}},
+			recs{c0: rec(10_000, 5_000, 3_600, false), v0: rec(7_000, 4_000, noTime, false)}, noTime, groupTimes{6_000, 4_000, noTime, noTime, 7_000, 5_000}},
 		{"boundary one period after the least refit mark",
-			recs{c0: rec(10_000, 5_000, 3_600, false), c1: rec(noTime, noTime, 1_800, false), v0: rec(7_000, 4_000, noTime, false)}, noTime, groupTimes{6_000, 4_000, noTime, 1_800 + 900}},
+			recs{c0: rec(10_000, 5_000, 3_600, false), c1: rec(noTime, noTime, 1_800, false), v0: rec(7_000, 4_000, noTime, false)}, noTime, groupTimes{6_000, 4_000, noTime, 1_800 + 900, 7_000, 5_000}},
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
@@ -96,14 +96,14 @@ func TestAppliedThroughAndTicks(t *testing.T) {
 		sweepOK, ok  bool
 		vacuous      bool
 	}{
-		{"swept through the boundary", groupTimes{2_500, 1_800, 1_800, 1_800}, 1_800, 1_800, true, true, false},
-		{"refit waits for the sweep", groupTimes{2_500, 1_800, 900, 1_800}, 1_800, 900, true, true, false},
-		{"no sweep before the group applied through the boundary", groupTimes{2_500, 1_700, 900, 1_800}, 0, 900, false, true, false},
-		{"sweep by the watermark below the boundary", groupTimes{1_700, 1_800, 900, 1_800}, 1_700, 900, true, true, false},
-		{"no conversion partition: no sweep to wait for", groupTimes{2_500, 1_900, forever, 1_800}, 1_800, 1_800, true, true, false},
-		{"boundary unknown: vacuous, at the tick", groupTimes{2_500, 1_900, noTime, noTime}, 1_800, 0, true, false, true},
-		{"floor, not truncation", groupTimes{-100, 5_000, forever, noTime}, -900, -900, true, true, true},
-		{"applied unknown", groupTimes{2_500, noTime, 1_800, 1_800}, 0, 0, false, false, false},
+		{"swept through the boundary", groupTimes{2_500, 1_800, 1_800, 1_800, noTime, noTime}, 1_800, 1_800, true, true, false},
+		{"refit waits for the sweep", groupTimes{2_500, 1_800, 900, 1_800, noTime, noTime}, 1_800, 900, true, true, false},
+		{"no sweep before the group applied through the boundary", groupTimes{2_500, 1_700, 900, 1_800, noTime, noTime}, 0, 900, false, true, false},
+		{"sweep by the watermark below the boundary", groupTimes{1_700, 1_800, 900, 1_800, noTime, noTime}, 1_700, 900, true, true, false},
+		{"no conversion partition: no sweep to wait for", groupTimes{2_500, 1_900, forever, 1_800, noTime, noTime}, 1_800, 1_800, true, true, false},
+		{"boundary unknown: vacuous, at the tick", groupTimes{2_500, 1_900, noTime, noTime, noTime, noTime}, 1_800, 0, true, false, true},
+		{"floor, not truncation", groupTimes{-100, 5_000, forever, noTime, noTime, noTime}, -900, -900, true, true, true},
+		{"applied unknown", groupTimes{2_500, noTime, 1_800, 1_800, noTime, noTime}, 0, 0, false, false, false},
 	}
 	for _, tc := range ticks {
 		t.Run(tc.name, func(t *testing.T) {

@@ -2,6 +2,7 @@ package state
 
 import (
 	"context"
+	"errors"
 	"fmt"
 	"math"
 	"slices"
@@ -100,6 +101,20 @@ type ApplyResult struct {
 	// Duplicates are conversions skipped because another conversion of the
 	// same click had been counted.
 	Duplicates []Duplicate
+	// Compacted lists the arms whose hash this call compacted because its
+	// records passed Options.CompactFields or Options.CompactBytes.
+	Compacted []string
+	// CompactErr is the failure of such a compaction (the delta itself
+	// was applied; the arm's next Apply tries again).
+	CompactErr error
+
+	sizes []armSize
+}
+
+// armSize is an arm hash's field count and record bytes after an apply.
+type armSize struct {
+	arm           string
+	fields, bytes int
 }
 
 // Duplicate is a conversion of a click that had already converted.
@@ -135,10 +150,25 @@ func (s *Store) Apply(ctx context.Context, d *ExperimentDelta) (ApplyResult, err
 	if err != nil {
 		return ApplyResult{}, redisFailure(op, fmt.Errorf("experiment %q: %w", d.Experiment, err))
 	}
-	res, err := parseApplyReply(reply, call.convs)
+	res, err := parseApplyReply(reply, call.convs, call.arms)
 	if err != nil {
 		return ApplyResult{}, permanent(op, fmt.Errorf("experiment %q: %w", d.Experiment, err))
 	}
+	// Compaction on write: an arm whose records grew past the bounds is
+	// folded into its base now, so that no arm hash grows with traffic
+	// between the refit owner's compactions.
+	var errs []error
+	for _, sz := range res.sizes {
+		if sz.fields <= s.opts.CompactFields && sz.bytes <= s.opts.CompactBytes {
+			continue
+		}
+		if _, err := s.Compact(ctx, d.Experiment, sz.arm); err != nil {
+			errs = append(errs, err)
+			continue
+		}
+		res.Compacted = append(res.Compacted, sz.arm)
+	}
+	res.CompactErr = errors.Join(errs...)
 	return res, nil
 }
 
@@ -148,6 +178,7 @@ type applyCall struct {
 	keys  []string
 	args  []any
 	convs []Duplicate
+	arms  []string // arm names in script order
 }
 
 // buildApply validates d and lays out the script's KEYS and ARGV.
@@ -215,14 +246,7 @@ func (s *Store) buildApply(d *ExperimentDelta) (applyCall, error) {
 	var convs []Duplicate
 	for _, name := range names {
 		a := d.Arms[name]
-		incr := make(map[string]uint64, len(a.Clicks)+1)
-		var order []string
-		add := func(f string, n uint64) {
-			if _, ok := incr[f]; !ok {
-				order = append(order, f)
-			}
-			incr[f] += n
-		}
+		clicks := make(map[estimator.BucketKey]uint64, len(a.Clicks))
 		for _, b := range a.Clicks {
 			if b.Converted != 0 {
 				return applyCall{}, fmt.Errorf("%w: experiment %q arm %q: click bucket %d/%d carries %d conversions", ErrInvalid, exp, name, b.Level, b.Index, b.Converted)
@@ -230,20 +254,16 @@ func (s *Store) buildApply(d *ExperimentDelta) (applyCall, error) {
 			if b.Level > maxLevel {
 				return applyCall{}, fmt.Errorf("%w: experiment %q arm %q: bucket level %d above maximum %d", ErrInvalid, exp, name, b.Level, maxLevel)
 			}
-			if b.Clicks > 0 {
-				add(bucketField('b', b.BucketKey), b.Clicks)
+			n := clicks[b.BucketKey]
+			if err := addTo(&n, b.Clicks); err != nil {
+				return applyCall{}, fmt.Errorf("%w: experiment %q arm %q: count too large", ErrInvalid, exp, name)
 			}
+			clicks[b.BucketKey] = n
 		}
-		if a.MaturedClicks > 0 {
-			add("mc", a.MaturedClicks)
+		if a.MaturedClicks > math.MaxInt64 {
+			return applyCall{}, fmt.Errorf("%w: experiment %q arm %q: count %d too large", ErrInvalid, exp, name, a.MaturedClicks)
 		}
-		args = append(args, name, len(order), len(a.Conversions))
-		for _, f := range order {
-			if incr[f] > math.MaxInt64 {
-				return applyCall{}, fmt.Errorf("%w: experiment %q arm %q: count %d too large", ErrInvalid, exp, name, incr[f])
-			}
-			args = append(args, f, strconv.FormatUint(incr[f], 10))
-		}
+		args = append(args, name, clickRecord(clicks, a.MaturedClicks), len(a.Conversions))
 		for _, c := range a.Conversions {
 			if c.ClickID == "" || c.Origin == "" {
 				return applyCall{}, fmt.Errorf("%w: experiment %q arm %q: conversion without click id or origin", ErrInvalid, exp, name)
@@ -269,11 +289,11 @@ func (s *Store) buildApply(d *ExperimentDelta) (applyCall, error) {
 			convs = append(convs, Duplicate{Arm: name, Conversion: c})
 		}
 	}
-	return applyCall{keys: keys, args: args, convs: convs}, nil
+	return applyCall{keys: keys, args: args, convs: convs, arms: names}, nil
 }
 
 // parseApplyReply turns the apply script's reply into a result or a refusal.
-func parseApplyReply(reply []any, convs []Duplicate) (ApplyResult, error) {
+func parseApplyReply(reply []any, convs []Duplicate, arms []string) (ApplyResult, error) {
 	if len(reply) == 0 {
 		return ApplyResult{}, fmt.Errorf("%w: empty apply reply", ErrCorrupt)
 	}
@@ -299,16 +319,25 @@ func parseApplyReply(reply []any, convs []Duplicate) (ApplyResult, error) {
 	default:
 		return ApplyResult{}, fmt.Errorf("%w: apply status %q", ErrCorrupt, status)
 	}
-	if len(reply) < 3 || len(reply)%2 != 1 {
+	if len(reply) < 4 || len(reply)%2 != 0 {
 		return ApplyResult{}, fmt.Errorf("%w: apply reply of %d elements", ErrCorrupt, len(reply))
 	}
 	counted, ok1 := reply[1].(int64)
 	redelivered, ok2 := reply[2].(int64)
-	if !ok1 || !ok2 {
-		return ApplyResult{}, fmt.Errorf("%w: apply counts %v %v", ErrCorrupt, reply[1], reply[2])
+	sizes, ok3 := reply[3].([]any)
+	if !ok1 || !ok2 || !ok3 || len(sizes) != 2*len(arms) {
+		return ApplyResult{}, fmt.Errorf("%w: apply counts %v %v %v", ErrCorrupt, reply[1], reply[2], reply[3])
 	}
 	res := ApplyResult{Counted: int(counted), Redelivered: int(redelivered)}
-	for i := 3; i+1 < len(reply); i += 2 {
+	for i, name := range arms {
+		fields, ok1 := sizes[2*i].(int64)
+		bytes, ok2 := sizes[2*i+1].(int64)
+		if !ok1 || !ok2 {
+			return ApplyResult{}, fmt.Errorf("%w: apply sizes %v", ErrCorrupt, sizes)
+		}
+		res.sizes = append(res.sizes, armSize{arm: name, fields: int(fields), bytes: int(bytes)})
+	}
+	for i := 4; i+1 < len(reply); i += 2 {
 		idx, ok := reply[i].(int64)
 		if !ok || idx < 1 || int(idx) > len(convs) {
 			return ApplyResult{}, fmt.Errorf("%w: duplicate index %v", ErrCorrupt, reply[i])

@@ -3,8 +3,9 @@ package state
 import (
 	"context"
 	"errors"
+	"maps"
 	"reflect"
-	"strconv"
+	"slices"
 	"sync"
 	"testing"
 )
@@ -97,32 +98,25 @@ func TestCompactBesideApply(t *testing.T) {
 		if err != nil {
 			t.Fatalf("compact %s: %v", arm, err)
 		}
-		// The hash now holds exactly one field per canonical bucket and
-		// kind, the matured and delay totals, nothing zero.
+		// The hash now holds its base alone, and the base holds exactly
+		// the loaded state's canonical counts.
 		h, err := rdb.HGetAll(ctx, s.keys.arm("exp-a", arm)).Result()
 		if err != nil {
 			t.Fatal(err)
 		}
-		snap := before.States[arm].Snapshot()
-		want := map[string]string{}
-		put := func(f string, n uint64) {
-			if n > 0 {
-				want[f] = strconv.FormatUint(n, 10)
-			}
+		if len(h) != 1 || h[armBaseField] == "" {
+			t.Fatalf("%s: compacted hash has fields %v, want the base alone (compact said %+v)", arm, slices.Collect(maps.Keys(h)), res)
 		}
-		for _, b := range snap.Buckets {
-			put(bucketField('b', b.BucketKey), b.Clicks)
-			put(bucketField('v', b.BucketKey), b.Converted)
+		c := newArmCounts(len(testLayout.DelayEdges()) - 1)
+		if err := c.addBase([]byte(h[armBaseField])); err != nil {
+			t.Fatal(err)
 		}
-		put("mc", snap.MaturedClicks)
-		put("mv", snap.MaturedConversions)
-		for i, n := range snap.Delays {
-			put("d:"+strconv.Itoa(i), n)
+		st, held, err := c.state(testLayout, before.Watermark)
+		if err != nil || held != 0 {
+			t.Fatalf("%s: base: %v (held %d)", arm, err, held)
 		}
-		put("dn", snap.DelayCount)
-		put("ds", snap.DelaySumMs)
-		if !reflect.DeepEqual(h, want) {
-			t.Errorf("%s: compacted hash has %d fields, want the %d canonical ones (compact said %+v)", arm, len(h), len(want), res)
+		if !reflect.DeepEqual(st.Snapshot(), before.States[arm].Snapshot()) {
+			t.Errorf("%s: the base holds other counts than the loaded state", arm)
 		}
 	}
 	after, err := s.Load(ctx, "exp-a")
@@ -158,5 +152,55 @@ func TestCompactConflict(t *testing.T) {
 	h, _ := rdb.HGetAll(ctx, key).Result()
 	if !reflect.DeepEqual(h, map[string]string{"b:1:2": "2", "mc": "1"}) {
 		t.Fatalf("hash after rewrite: %v", h)
+	}
+}
+
+// TestCompactLoaded folds the arms of a loaded experiment in one round
+// trip: every arm with records is rewritten to its base, except one
+// written between the load and the fold, and Load gives the same state
+// before and after.
+func TestCompactLoaded(t *testing.T) {
+	s, rdb, _ := newStore(t, Options{})
+	ctx := testCtx(t)
+	steps := singleInstance(scenario(8, 900, 2), 60)
+	half := len(steps) / 2
+	applySteps(t, ctx, s, steps[:half], 1)
+	ex, err := s.Load(ctx, "exp-a")
+	if err != nil {
+		t.Fatal(err)
+	}
+	// A write to red after the load: its fold must be refused.
+	if _, err := s.Apply(ctx, &ExperimentDelta{Experiment: "exp-a", Layout: testLayout, Watermark: ex.Watermark, Generation: 1,
+		Ranges: []OffsetRange{{Topic: "other", Partition: 0, From: 0, To: 0}},
+		Arms:   map[string]*ArmDelta{"red": {MaturedClicks: 1}}}); err != nil {
+		t.Fatal(err)
+	}
+	done, err := s.CompactLoaded(ctx, ex)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !slices.Equal(done, []string{"blue", "green"}) {
+		t.Fatalf("folded %v, want blue and green (red was written since the load)", done)
+	}
+	for _, arm := range done {
+		h, err := rdb.HGetAll(ctx, s.keys.arm("exp-a", arm)).Result()
+		if err != nil {
+			t.Fatal(err)
+		}
+		if len(h) != 1 || h[armBaseField] == "" {
+			t.Errorf("%s after the fold: fields %v, want the base alone", arm, slices.Collect(maps.Keys(h)))
+		}
+	}
+	after, err := s.Load(ctx, "exp-a")
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, arm := range []string{"blue", "green"} {
+		if !reflect.DeepEqual(after.States[arm].Snapshot(), ex.States[arm].Snapshot()) {
+			t.Errorf("%s: Load differs after the fold", arm)
+		}
+	}
+	if got, want := after.States["red"].Clicks(), ex.States["red"].Clicks()+1; got != want {
+		t.Errorf("red: %d clicks, want %d", got, want)
 	}
 }

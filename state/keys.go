@@ -28,9 +28,38 @@ func (k keys) marker(experiment, clickID string) string {
 	return k.exp(experiment) + ":cv:" + clickID
 }
 
-// click is a click's index entry; orphan the conversion parked for it.
-func (k keys) click(clickID string) string  { return k.prefix + ":{k:" + clickID + "}:c" }
-func (k keys) orphan(clickID string) string { return k.prefix + ":{k:" + clickID + "}:o" }
+// legacyClick and legacyOrphan are a click's entry and parked conversion
+// in the first layout of the click index (one key per click); the index
+// reads them until they expire (see state/legacyindex.go).
+func (k keys) legacyClick(clickID string) string  { return k.prefix + ":{k:" + clickID + "}:c" }
+func (k keys) legacyOrphan(clickID string) string { return k.prefix + ":{k:" + clickID + "}:o" }
+
+// indexMeta is the click index descriptor and indexDict its dictionary
+// of arm and topic names (see state/indexmeta.go); both share the tag
+// {i}, apart from every index group.
+func (k keys) indexMeta() string { return k.prefix + ":{i}:meta" }
+func (k keys) indexDict() string { return k.prefix + ":{i}:dict" }
+
+// indexGroup is the common start of the keys of index group g, hash tag
+// included: every key a click id uses lives in its group's slot.
+func (k keys) indexGroup(g int) string { return k.prefix + ":{i:" + strconv.Itoa(g) + "}" }
+
+// indexEntries is sub-key sub of generation gen of group g: a hash of
+// click fields to entries.
+func (k keys) indexEntries(g int, gen int64, sub int) string {
+	return k.indexGroup(g) + ":" + strconv.FormatInt(gen, 10) + ":" + strconv.Itoa(sub)
+}
+
+// indexFilter is the bitmap of generation gen of group g that screens
+// click ids before their entries are read.
+func (k keys) indexFilter(g int, gen int64) string {
+	return k.indexGroup(g) + ":" + strconv.FormatInt(gen, 10) + ":f"
+}
+
+// indexGens is group g's copy of the sub-key count of each live
+// generation; indexOrphans the conversions parked in group g.
+func (k keys) indexGens(g int) string    { return k.indexGroup(g) + ":g" }
+func (k keys) indexOrphans(g int) string { return k.indexGroup(g) + ":o" }
 
 // due is the deadline set of the orphans parked by a conversion partition.
 func (k keys) due(topic string, partition int) string {

@@ -56,10 +56,10 @@ func TestKeysHashTags(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	tagged := regexp.MustCompile(`^rp:\{([xkog]):([^{}]+)\}:(.+)$`)
+	tagged := regexp.MustCompile(`^rp:\{([xiog])(?::([^{}]+))?\}:(.+)$`)
 	suffix := map[string]*regexp.Regexp{
 		"x": regexp.MustCompile(`^(meta|arms|off|a:.+|cv:.+)$`),
-		"k": regexp.MustCompile(`^(c|o)$`),
+		"i": regexp.MustCompile(`^(meta|dict|g|o|-?\d+:(\d+|f))$`),
 		"o": regexp.MustCompile(`^due$`),
 		"g": regexp.MustCompile(`^resume$`),
 	}
@@ -79,7 +79,10 @@ func TestKeysHashTags(t *testing.T) {
 			t.Errorf("key %q: unexpected suffix %q for kind %s", k, m[3], m[1])
 		}
 		kinds[m[1]]++
-		group := m[1] + ":" + m[2]
+		group := m[1]
+		if m[2] != "" {
+			group += ":" + m[2]
+		}
 		slot := redistest.KeySlot(k)
 		if prev, ok := slots[group]; ok && prev != slot {
 			t.Errorf("key %q in slot %d, other keys of %s in %d", k, slot, group, prev)
@@ -89,7 +92,7 @@ func TestKeysHashTags(t *testing.T) {
 			t.Errorf("key %q hashes to %d, its tag %q to %d", k, slot, group, want)
 		}
 	}
-	for _, kind := range []string{"discovery", "x", "k", "o", "g"} {
+	for _, kind := range []string{"discovery", "x", "i", "o", "g"} {
 		if kinds[kind] == 0 {
 			t.Errorf("no key of kind %s written", kind)
 		}

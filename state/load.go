@@ -2,6 +2,7 @@ package state
 
 import (
 	"context"
+	"errors"
 	"fmt"
 	"slices"
 	"strconv"
@@ -29,6 +30,15 @@ type Experiment struct {
 	// Held counts, per arm, conversions stored but left out of States
 	// because their click's delta has not landed yet (nil if none).
 	Held map[string]uint64
+
+	// folds holds, per arm whose hash holds records, the hash as read
+	// and the base that replaces it (see CompactLoaded).
+	folds map[string]fold
+}
+
+// fold is an arm hash as Load read it and the base it folds into.
+type fold struct {
+	read, base map[string]string
 }
 
 // AppliedOffset is the last offset of a partition applied to an experiment
@@ -123,9 +133,19 @@ func buildExperiment(id string, names []string, parts []any) (*Experiment, error
 		return nil, err
 	}
 	for i, name := range names {
-		c, err := canonicalArm(layout, wm, name, parts[2+i])
+		h, err := flatHash(parts[2+i])
 		if err != nil {
-			return nil, err
+			return nil, fmt.Errorf("arm %q: %w", name, err)
+		}
+		c, err := canonicalize(layout, wm, h)
+		if err != nil {
+			return nil, fmt.Errorf("arm %q: %w", name, err)
+		}
+		if _, base := h[armBaseField]; len(h) > 1 || (len(h) == 1 && !base) {
+			if e.folds == nil {
+				e.folds = make(map[string]fold)
+			}
+			e.folds[name] = fold{read: h, base: c.fields()}
 		}
 		st, held, err := c.state(layout, wm)
 		if err != nil {
@@ -234,97 +254,49 @@ func flatHash(v any) (map[string]string, error) {
 	return h, nil
 }
 
-// armCounts are the counts of an arm hash: as parsed, in whatever
-// (possibly finer than canonical) buckets they were written, or, from
-// canonicalize, re-keyed to canonical buckets at one watermark.
-type armCounts struct {
-	clicks, converted  map[estimator.BucketKey]uint64
-	maturedClicks      uint64
-	maturedConversions uint64
-	delays             []uint64
-	delayCount         uint64
-	delaySumMs         uint64
-}
-
-// parseArmHash reads an arm hash; see the package documentation for its
-// fields.
-func parseArmHash(h map[string]string, nbins int) (armCounts, error) {
-	a := armCounts{
-		clicks:    make(map[estimator.BucketKey]uint64),
-		converted: make(map[estimator.BucketKey]uint64),
-		delays:    make([]uint64, nbins),
-	}
-	for f, v := range h {
-		n, err := strconv.ParseInt(v, 10, 64)
-		if err != nil || n < 0 {
-			return a, fmt.Errorf("%w: field %s=%q", ErrCorrupt, f, v)
-		}
-		u := uint64(n)
-		switch {
-		case f == "mc":
-			a.maturedClicks = u
-		case f == "mv":
-			a.maturedConversions = u
-		case f == "dn":
-			a.delayCount = u
-		case f == "ds":
-			a.delaySumMs = u
-		case strings.HasPrefix(f, "d:"):
-			i, err := strconv.Atoi(f[2:])
-			if err != nil || i < 0 || i >= nbins {
-				return a, fmt.Errorf("%w: delay field %q of %d bins", ErrCorrupt, f, nbins)
-			}
-			a.delays[i] = u
-		case strings.HasPrefix(f, "b:"), strings.HasPrefix(f, "v:"):
-			lv, idx, ok := strings.Cut(f[2:], ":")
-			level, err1 := strconv.ParseUint(lv, 10, 8)
-			index, err2 := strconv.ParseInt(idx, 10, 64)
-			if !ok || err1 != nil || err2 != nil {
-				return a, fmt.Errorf("%w: bucket field %q", ErrCorrupt, f)
-			}
-			k := estimator.BucketKey{Level: uint8(level), Index: index}
-			if f[0] == 'b' {
-				a.clicks[k] += u
-			} else {
-				a.converted[k] += u
-			}
-		default:
-			return a, fmt.Errorf("%w: unknown arm field %q", ErrCorrupt, f)
-		}
-	}
-	return a, nil
-}
-
 // canonicalize re-keys an arm hash to canonical buckets at wm.
 //
 // Click and conversion counts of one click time may sit in buckets of
-// different levels (a conversion is keyed at its own delta's watermark), so
-// each kind is re-keyed on its own by estimator.FromSnapshot, with
-// conversions posing as clicks (FromSnapshot checks each input bucket's
-// conversions against its clicks).
+// different levels (a conversion is keyed at its own delta's watermark),
+// so each kind is re-keyed on its own: every bucket goes to the canonical
+// bucket at wm of its start time (estimator.Placement), which holds it
+// whole, as Advance re-keys a state, since no bucket was keyed at a later
+// watermark than the stored one; one that has matured goes to the matured
+// totals.
 func canonicalize(l estimator.Layout, wm int64, h map[string]string) (armCounts, error) {
+	place := l.Placement()
 	nbins := len(l.DelayEdges()) - 1
 	a, err := parseArmHash(h, nbins)
 	if err != nil {
 		return armCounts{}, err
 	}
+	top := levels(l)
+	base := l.Base.Milliseconds()
 	rekey := func(m map[estimator.BucketKey]uint64) (map[estimator.BucketKey]uint64, uint64, error) {
-		snap := estimator.ArmSnapshot{Layout: l, Watermark: wm, Delays: make([]uint64, nbins)}
+		res := make(map[estimator.BucketKey]uint64, len(m))
+		var matured uint64
 		for k, n := range m {
-			if n > 0 {
-				snap.Buckets = append(snap.Buckets, estimator.Bucket{BucketKey: k, BucketCounts: estimator.BucketCounts{Clicks: n}})
+			if n == 0 {
+				continue
 			}
+			width := base << k.Level
+			if k.Level > top || k.Index > maxExact/width || k.Index < -maxExact/width {
+				return nil, 0, fmt.Errorf("bucket %d/%d out of range", k.Level, k.Index)
+			}
+			nk, done := place.PendingBucket(k.Index*width, wm)
+			if done {
+				if err := addTo(&matured, n); err != nil {
+					return nil, 0, err
+				}
+				continue
+			}
+			v := res[nk]
+			if err := addTo(&v, n); err != nil {
+				return nil, 0, err
+			}
+			res[nk] = v
 		}
-		st, err := estimator.FromSnapshot(snap)
-		if err != nil {
-			return nil, 0, err
-		}
-		out := st.Snapshot()
-		res := make(map[estimator.BucketKey]uint64, len(out.Buckets))
-		for _, b := range out.Buckets {
-			res[b.BucketKey] = b.Clicks
-		}
-		return res, out.MaturedClicks, nil
+		return res, matured, nil
 	}
 	c := armCounts{delays: a.delays, delayCount: a.delayCount, delaySumMs: a.delaySumMs}
 	var mc, mv uint64
@@ -334,8 +306,10 @@ func canonicalize(l estimator.Layout, wm int64, h map[string]string) (armCounts,
 	if c.converted, mv, err = rekey(a.converted); err != nil {
 		return armCounts{}, fmt.Errorf("%w: conversions: %w", ErrCorrupt, err)
 	}
-	c.maturedClicks = a.maturedClicks + mc
-	c.maturedConversions = a.maturedConversions + mv
+	c.maturedClicks, c.maturedConversions = a.maturedClicks, a.maturedConversions
+	if err := errors.Join(addTo(&c.maturedClicks, mc), addTo(&c.maturedConversions, mv)); err != nil {
+		return armCounts{}, err
+	}
 	return c, nil
 }
 
@@ -371,29 +345,49 @@ func (c armCounts) state(l estimator.Layout, wm int64) (st *estimator.ArmState, 
 	return st, held, nil
 }
 
-// fields is the arm hash holding exactly c's counts, zero fields left out.
-// Held-back conversions are kept.
-func (c armCounts) fields() map[string]string {
-	h := make(map[string]string)
-	put := func(f string, n uint64) {
-		if n > 0 {
-			h[f] = strconv.FormatUint(n, 10)
+// CompactLoaded folds, as Compact does, the hash of every arm of ex (as
+// Load returned it) that holds records into its base, in one round trip:
+// each rewrite is a compare-and-set against the hash Load read, so an arm
+// written since is left for later. It returns the arms rewritten. The
+// refit owner calls it after each refit with the state it loaded.
+func (s *Store) CompactLoaded(ctx context.Context, ex *Experiment) ([]string, error) {
+	if ex == nil || len(ex.folds) == 0 {
+		return nil, nil
+	}
+	names := make([]string, 0, len(ex.folds))
+	for name := range ex.folds {
+		names = append(names, name)
+	}
+	slices.Sort(names)
+	calls := make([]scriptCall, len(names))
+	for i, name := range names {
+		calls[i] = scriptCall{keys: []string{s.keys.arm(ex.ID, name)}, args: compactArgs(ex.folds[name].read, ex.folds[name].base)}
+	}
+	cmds, err := runPipelined(ctx, s.rdb, compactScript, calls)
+	if err != nil {
+		return nil, redisFailure("compact", fmt.Errorf("experiment %q: %w", ex.ID, err))
+	}
+	var done []string
+	for i, cmd := range cmds {
+		if n, _ := cmd.Int(); n == 1 {
+			done = append(done, names[i])
 		}
 	}
-	for k, n := range c.clicks {
-		put(bucketField('b', k), n)
+	return done, nil
+}
+
+// compactArgs lays out compact.lua's ARGV: the fields read, then the ones
+// that replace them.
+func compactArgs(read, want map[string]string) []any {
+	args := make([]any, 0, 1+2*len(read)+2*len(want))
+	args = append(args, len(read))
+	for _, f := range sortedKeys(read) {
+		args = append(args, f, read[f])
 	}
-	for k, n := range c.converted {
-		put(bucketField('v', k), n)
+	for _, f := range sortedKeys(want) {
+		args = append(args, f, want[f])
 	}
-	put("mc", c.maturedClicks)
-	put("mv", c.maturedConversions)
-	for i, n := range c.delays {
-		put("d:"+strconv.Itoa(i), n)
-	}
-	put("dn", c.delayCount)
-	put("ds", c.delaySumMs)
-	return h
+	return args
 }
 
 // CompactResult says what Compact did.
@@ -404,12 +398,15 @@ type CompactResult struct {
 	Attempts int
 }
 
-// Compact rewrites one arm's hash into canonical form at the stored
-// watermark: exactly one field per canonical bucket, matured and delay
-// totals, no zero fields. It reads the hash, computes the canonical form and
-// replaces the hash only if it still holds what was read (compare-and-set),
-// retrying up to Options.CompactAttempts times, so it is safe beside
-// concurrent Apply calls. Load returns the same state before and after.
+// Compact folds one arm's hash into its base (see state/armformat.go),
+// canonical at the stored watermark: the base alone, holding every count
+// and no zero one. It reads the hash, computes the base and replaces the
+// hash only if it still holds what was read (compare-and-set), retrying up
+// to Options.CompactAttempts times, so it is safe beside concurrent Apply
+// calls. A hash that holds its base alone is left as it is: its buckets
+// may be finer than canonical at a later watermark, which Load re-keys,
+// and it is no larger than a canonical state at the watermark it was
+// written at. Load returns the same state before and after.
 func (s *Store) Compact(ctx context.Context, experiment, arm string) (CompactResult, error) {
 	const op = "compact"
 	if err := validExperiment(experiment); err != nil {
@@ -430,8 +427,8 @@ func (s *Store) Compact(ctx context.Context, experiment, arm string) (CompactRes
 			return res, redisFailure(op, fmt.Errorf("experiment %q arm %q: read: %w", experiment, arm, err))
 		}
 		h := hcmd.Val()
-		res.FieldsBefore = len(h)
-		if len(h) == 0 {
+		res.FieldsBefore, res.FieldsAfter = len(h), len(h)
+		if _, base := h[armBaseField]; len(h) == 0 || (len(h) == 1 && base) {
 			return res, nil
 		}
 		meta := map[string]string{}
@@ -453,15 +450,7 @@ func (s *Store) Compact(ctx context.Context, experiment, arm string) (CompactRes
 		if maps2Equal(h, want) {
 			return res, nil
 		}
-		args := make([]any, 0, 1+2*len(h)+2*len(want))
-		args = append(args, len(h))
-		for _, f := range sortedKeys(h) {
-			args = append(args, f, h[f])
-		}
-		for _, f := range sortedKeys(want) {
-			args = append(args, f, want[f])
-		}
-		ok, err := compactScript.Run(ctx, s.rdb, []string{akey}, args...).Int()
+		ok, err := compactScript.Run(ctx, s.rdb, []string{akey}, compactArgs(h, want)...).Int()
 		if err != nil {
 			return res, redisFailure(op, fmt.Errorf("experiment %q arm %q: %w", experiment, arm, err))
 		}

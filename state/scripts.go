@@ -17,20 +17,32 @@ var (
 	compactSrc string
 	//go:embed lua/alloc.lua
 	allocSrc string
-	//go:embed lua/putclick.lua
-	putClickSrc string
+	//go:embed lua/index_open.lua
+	indexOpenSrc string
+	//go:embed lua/dict.lua
+	dictSrc string
 	//go:embed lua/lookup.lua
 	lookupSrc string
+	//go:embed lua/claim.lua
+	claimSrc string
 	//go:embed lua/sweep.lua
 	sweepSrc string
+	//go:embed lua/legacy_claim.lua
+	legacyClaimSrc string
+	//go:embed lua/legacy_sweep.lua
+	legacySweepSrc string
 
-	applyScript    = redis.NewScript(applySrc)
-	loadScript     = redis.NewScript(loadSrc)
-	compactScript  = redis.NewScript(compactSrc)
-	allocScript    = redis.NewScript(allocSrc)
-	putClickScript = redis.NewScript(putClickSrc)
-	lookupScript   = redis.NewScript(lookupSrc)
-	sweepScript    = redis.NewScript(sweepSrc)
+	applyScript       = redis.NewScript(applySrc)
+	loadScript        = redis.NewScript(loadSrc)
+	compactScript     = redis.NewScript(compactSrc)
+	allocScript       = redis.NewScript(allocSrc)
+	indexOpenScript   = redis.NewScript(indexOpenSrc)
+	dictScript        = redis.NewScript(dictSrc)
+	lookupScript      = redis.NewScript(lookupSrc)
+	claimScript       = redis.NewScript(claimSrc)
+	sweepScript       = redis.NewScript(sweepSrc)
+	legacyClaimScript = redis.NewScript(legacyClaimSrc)
+	legacySweepScript = redis.NewScript(legacySweepSrc)
 )
 
 // scriptCall is one script invocation of a pipelined batch.

@@ -649,11 +649,12 @@ func (s *Store) ResumeOffsets(ctx context.Context) ([]ResumeOffset, error) {
 }
 
 // isBufferKey reports whether the key (prefix removed) is a join buffer:
-// a click index entry or orphan ({k:...}), a due set ({o:...}) or a
-// conversion marker ({x:<exp>}:cv:...).
+// a key of the click index ({i...}: entries, filters, orphans, the
+// descriptor and dictionary), of its first layout ({k:...}), a due set
+// ({o:...}) or a conversion marker ({x:<exp>}:cv:...).
 func isBufferKey(rest string) bool {
 	switch {
-	case strings.HasPrefix(rest, ":{k:"), strings.HasPrefix(rest, ":{o:"):
+	case strings.HasPrefix(rest, ":{i"), strings.HasPrefix(rest, ":{k:"), strings.HasPrefix(rest, ":{o:"):
 		return true
 	case strings.HasPrefix(rest, ":{x:"):
 		i := strings.IndexByte(rest, '}')

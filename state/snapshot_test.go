@@ -7,6 +7,7 @@ import (
 	"reflect"
 	"regexp"
 	"slices"
+	"strconv"
 	"strings"
 	"testing"
 
@@ -533,16 +534,25 @@ func TestExportJoinBuffers(t *testing.T) {
 		t.Fatal(err)
 	}
 	var keys []string
+	r1, r2 := refOf("k1"), refOf("k2")
+	gen := strconv.FormatInt(floorDiv64(t0, src.ix.genMs), 10)
 	for _, b := range snap.JoinBuffers {
 		keys = append(keys, b.Key)
-		// Click entries and orphans expire; due sets do not (TTL 0).
-		if due := strings.HasSuffix(b.Key, ":due"); due != (b.TTLMs == 0) {
+		// Parked orphans expire (a safety net behind the sweep); the index
+		// is retired by event time, due sets by the sweep (TTL 0).
+		if orphans := strings.HasSuffix(b.Key, "}:o"); orphans != (b.TTLMs > 0) {
 			t.Errorf("%s: ttl %d", b.Key, b.TTLMs)
 		}
 	}
 	slices.Sort(keys)
-	if want := []string{":{k:k1}:c", ":{k:k2}:o"}; !slices.Equal(keys[:2], want) || len(keys) != 3 {
-		t.Fatalf("join buffer keys %v, want %v and a due set", keys, want)
+	want := []string{
+		":{i:" + strconv.Itoa(r1.group) + "}:" + gen + ":0", ":{i:" + strconv.Itoa(r1.group) + "}:" + gen + ":f",
+		":{i:" + strconv.Itoa(r1.group) + "}:g", ":{i:" + strconv.Itoa(r2.group) + "}:o",
+		":{i}:dict", ":{i}:meta", ":{o:convs/0}:due",
+	}
+	slices.Sort(want)
+	if !slices.Equal(keys, want) {
+		t.Fatalf("join buffer keys %q, want %q", keys, want)
 	}
 	if plain, _ := src.ExportExperiments(ctx); len(plain.JoinBuffers) != 0 {
 		t.Fatalf("join buffers exported by default: %v", plain.JoinBuffers)
@@ -583,7 +593,7 @@ func TestSnapshotOnCluster(t *testing.T) {
 	clicks, markers := 0, 0
 	for _, b := range snap.JoinBuffers {
 		switch {
-		case b.Key == ":{k:k1}:c":
+		case strings.HasPrefix(b.Key, ":{i"):
 			clicks++
 		case strings.HasPrefix(b.Key, ":{x:") && strings.Contains(b.Key, "}:cv:"):
 			markers++
@@ -591,8 +601,8 @@ func TestSnapshotOnCluster(t *testing.T) {
 			t.Errorf("unexpected join buffer key %q", b.Key)
 		}
 	}
-	if len(snap.Resume) != 3 || clicks != 1 || markers == 0 {
-		t.Fatalf("resume %v, click entries %d, markers %d: want 3, 1 and some", snap.Resume, clicks, markers)
+	if len(snap.Resume) != 3 || clicks != 5 || markers == 0 {
+		t.Fatalf("resume %v, click index keys %d, markers %d: want 3, 5 (descriptor, dictionary, entries, filter, sizes) and some", snap.Resume, clicks, markers)
 	}
 	dst, _ := New(cc, Options{Prefix: "c2"})
 	if err := dst.Import(ctx, snap); err != nil {

@@ -18,6 +18,9 @@ const (
 	DefaultOrphanTTL        = time.Hour
 	DefaultMaxParkedOrphans = 100_000
 	DefaultCompactAttempts  = 8
+	DefaultCompactFields    = 64
+	DefaultCompactBytes     = 16 << 10
+	DefaultIndexGenerations = 4
 )
 
 // Options configure a Store.
@@ -26,8 +29,10 @@ type Options struct {
 	// Redis. It must not contain '{' or '}'. Default: "ripen".
 	Prefix string
 	// ClickTTLSlack is how long past the attribution window click index
-	// entries and conversion markers live (wall-clock TTL = window + slack).
-	// Default: 1h.
+	// entries and conversion markers live: a margin for conversions that
+	// come later than the pipeline's lateness allows. Index entries are
+	// retired by event time (RetireClickIndex), markers expire by
+	// wall-clock TTL (window + slack). Default: 1h.
 	ClickTTLSlack time.Duration
 	// OrphanTTL is the wall-clock lifetime of a parked orphan conversion,
 	// a safety net behind the event-time deadline sweep (DueOrphans); keep
@@ -40,6 +45,19 @@ type Options struct {
 	// CompactAttempts bounds the compare-and-set attempts of one Compact
 	// call. Default: 8.
 	CompactAttempts int
+	// CompactFields and CompactBytes bound an arm hash between
+	// compactions: Apply compacts an arm whose hash has more than
+	// CompactFields fields, or whose records (one per Apply since the last
+	// compaction) hold more than CompactBytes bytes. Defaults: 64 and
+	// 16384.
+	CompactFields int
+	CompactBytes  int
+	// IndexGenerations is the number of click index generations per
+	// horizon (the longest attribution window) when an index is created:
+	// more generations keep entries closer to their window (an entry is
+	// gone at most one generation after it) but make a conversion look in
+	// more of them. Default: 4.
+	IndexGenerations int
 }
 
 // WithDefaults returns o with every zero field set to its default.
@@ -58,6 +76,15 @@ func (o Options) WithDefaults() Options {
 	}
 	if o.CompactAttempts == 0 {
 		o.CompactAttempts = DefaultCompactAttempts
+	}
+	if o.CompactFields == 0 {
+		o.CompactFields = DefaultCompactFields
+	}
+	if o.CompactBytes == 0 {
+		o.CompactBytes = DefaultCompactBytes
+	}
+	if o.IndexGenerations == 0 {
+		o.IndexGenerations = DefaultIndexGenerations
 	}
 	return o
 }
@@ -81,6 +108,15 @@ func (o Options) Validate() error {
 	if o.CompactAttempts < 1 {
 		errs = append(errs, fmt.Errorf("state options: compact attempts %d must be at least 1", o.CompactAttempts))
 	}
+	if o.CompactFields < 4 {
+		errs = append(errs, fmt.Errorf("state options: compact fields %d must be at least 4", o.CompactFields))
+	}
+	if o.CompactBytes < 1 {
+		errs = append(errs, fmt.Errorf("state options: compact bytes %d must be at least 1", o.CompactBytes))
+	}
+	if o.IndexGenerations < 1 || o.IndexGenerations > 1000 {
+		errs = append(errs, fmt.Errorf("state options: index generations %d must be in [1, 1000]", o.IndexGenerations))
+	}
 	return errors.Join(errs...)
 }
 
@@ -94,6 +130,8 @@ type Store struct {
 	// registered holds the experiments this Store has added to the
 	// discovery set, to save a round trip per Apply.
 	registered sync.Map
+	// ix caches the click index descriptor and dictionary.
+	ix indexState
 }
 
 // New returns a Store on rdb (a *redis.Client, *redis.ClusterClient or any
@@ -134,6 +172,22 @@ func (s *Store) register(ctx context.Context, experiment string) error {
 	}
 	s.registered.Store(experiment, struct{}{})
 	return nil
+}
+
+// ArmMemory returns the Redis memory of an arm's hash (MEMORY USAGE with
+// every field sampled), 0 if the arm has none.
+func (s *Store) ArmMemory(ctx context.Context, experiment, arm string) (int64, error) {
+	if err := validExperiment(experiment); err != nil {
+		return 0, permanent("arm memory", err)
+	}
+	n, err := s.rdb.MemoryUsage(ctx, s.keys.arm(experiment, arm), 0).Result()
+	switch {
+	case errors.Is(err, redis.Nil):
+		return 0, nil
+	case err != nil:
+		return 0, redisFailure("arm memory", fmt.Errorf("experiment %q arm %q: %w", experiment, arm, err))
+	}
+	return n, nil
 }
 
 // SetResume records the offset a consumer of topic/partition resumes from

@@ -11,21 +11,29 @@
 -- ARGV[1] layout string; ARGV[2] delta watermark; ARGV[3] generation;
 -- ARGV[4] marker TTL in ms; ARGV[5] R, the number of ranges, followed by R
 -- triples (offsets field "<topic>/<partition>", first offset, last offset);
--- then A, the number of arms, and per arm: name, F, C, then F pairs
--- (field, increment) and C quintuples (origin, bucket field "v:<l>:<i>" or
--- "mv", delay field "d:<bin>", delay ms, click field "b:<l>:<i>" or "mc" of
--- a click that counts with the conversion, or "" for none). A click that
--- comes with its conversion (self-attributed) is guarded by the conversion
--- marker like the conversion itself, so a re-read counts neither twice.
+-- then A, the number of arms, and per arm: name, the click record (the
+-- arm's click counts in the binary base encoding, "" for none), C, then C
+-- quintuples (origin, bucket field "v:<l>:<i>" or "mv", delay field
+-- "d:<bin>", delay ms, click field "b:<l>:<i>" or "mc" of a click that
+-- counts with the conversion, or "" for none). A click that comes with its
+-- conversion (self-attributed) is guarded by the conversion marker like the
+-- conversion itself, so a re-read counts neither twice.
+--
+-- Each arm gets up to two record fields: "u:<n>" holding its click record
+-- and "c:<n>" the counts of the conversions counted now, summed per field
+-- as "<field> <count>" pairs; "#" numbers the records and "#b" adds up
+-- their bytes (see state/armformat.go).
 --
 -- Reply, first element a status:
 --   {"fenced", field, stored generation}  a range's partition has a newer owner
 --   {"layout", stored layout}             the experiment has another layout
 --   {"overlap", field, stored offset}     a range overlaps one already applied
 --   {"skipped"}                           every range was applied before
---   {"applied", counted, redelivered, i1, origin1, i2, origin2, ...}
---     with (i, origin) for every duplicate conversion: its 1-based position
---     among the delta's conversions and the origin that was counted.
+--   {"applied", counted, redelivered, sizes, i1, origin1, i2, origin2, ...}
+--     where sizes holds, per arm in ARGV order, the hash's field count and
+--     record bytes after the write, and (i, origin) are given for every
+--     duplicate conversion: its 1-based position among the delta's
+--     conversions and the origin that was counted.
 -- Nothing is written unless the status is "applied". A delta with no
 -- ranges (R = 0) carries only conversions, each guarded by its marker; it is
 -- always applied.
@@ -89,30 +97,35 @@ local ttl = ARGV[4]
 local counted, redelivered = 0, 0
 local dups = {}
 local ci = 0
+local sizes = {}
 for a = 1, na do
   local akey = KEYS[3 + a]
-  local name, nf, nc = ARGV[pos], tonumber(ARGV[pos + 1]), tonumber(ARGV[pos + 2])
+  local name, rec, nc = ARGV[pos], ARGV[pos + 1], tonumber(ARGV[pos + 2])
   pos = pos + 3
   redis.call('SADD', KEYS[2], name)
-  for f = 1, nf do
-    redis.call('HINCRBY', akey, ARGV[pos], ARGV[pos + 1])
-    pos = pos + 2
+  local sum, order = {}, {}
+  local function add(f, n)
+    if sum[f] then
+      sum[f] = sum[f] + n
+    else
+      sum[f] = n
+      order[#order + 1] = f
+    end
   end
   for c = 1, nc do
     ci = ci + 1
     local mkey = KEYS[3 + na + ci]
     local origin, bfield, dfield, dms, cfield = ARGV[pos], ARGV[pos + 1], ARGV[pos + 2], ARGV[pos + 3], ARGV[pos + 4]
     pos = pos + 5
-    local prev = redis.call('GET', mkey)
+    local prev = redis.call('SET', mkey, origin, 'NX', 'GET', 'PX', ttl)
     if not prev then
-      redis.call('SET', mkey, origin, 'PX', ttl)
       if cfield ~= '' then
-        redis.call('HINCRBY', akey, cfield, 1)
+        add(cfield, 1)
       end
-      redis.call('HINCRBY', akey, bfield, 1)
-      redis.call('HINCRBY', akey, dfield, 1)
-      redis.call('HINCRBY', akey, 'dn', 1)
-      redis.call('HINCRBY', akey, 'ds', dms)
+      add(bfield, 1)
+      add(dfield, 1)
+      add('dn', 1)
+      add('ds', tonumber(dms))
       counted = counted + 1
     elseif prev == origin then
       redelivered = redelivered + 1
@@ -121,6 +134,26 @@ for a = 1, na do
       dups[#dups + 1] = prev
     end
   end
+  local parts = {}
+  for _, f in ipairs(order) do
+    parts[#parts + 1] = f .. ' ' .. string.format('%.0f', sum[f])
+  end
+  local bytes = 0
+  if rec ~= '' or #parts > 0 then
+    local n = redis.call('HINCRBY', akey, '#', 1)
+    local size = #rec
+    if rec ~= '' then
+      redis.call('HSET', akey, 'u:' .. n, rec)
+    end
+    if #parts > 0 then
+      local conv = table.concat(parts, ' ')
+      redis.call('HSET', akey, 'c:' .. n, conv)
+      size = size + #conv
+    end
+    bytes = redis.call('HINCRBY', akey, '#b', size)
+  end
+  sizes[#sizes + 1] = redis.call('HLEN', akey)
+  sizes[#sizes + 1] = bytes
 end
 
 for r = 1, nr do
@@ -132,7 +165,7 @@ if not wm or tonumber(wm) < tonumber(ARGV[2]) then
 end
 redis.call('HSET', KEYS[1], 'arms', redis.call('SCARD', KEYS[2]))
 
-local reply = {'applied', counted, redelivered}
+local reply = {'applied', counted, redelivered, sizes}
 for i = 1, #dups do
   reply[#reply + 1] = dups[i]
 end

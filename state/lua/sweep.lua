@@ -1,42 +1,44 @@
 -- sweep.lua: phase one of settling an orphan whose deadline entry came due
 -- in its partition's due set. An unclaimed orphan past its deadline is
--- marked expiring (state "x", field "sw" = the sweeper) and returned; it is
--- deleted only by settle (phase three) after the caller applied or
--- dead-lettered it (phase two), so a crash in between loses nothing: the
--- next sweep returns it again. A click arriving meanwhile leaves it alone.
+-- marked expiring (state "x") and returned; it is deleted only by settle
+-- (phase three) after the caller applied or dead-lettered it (phase two),
+-- so a crash in between loses nothing: the next sweep returns it again. A
+-- click arriving meanwhile leaves it alone.
 --
--- KEYS[1] orphan <p>:{k:<click>}:o
--- ARGV[1] topic; ARGV[2] partition; ARGV[3] watermark (event time);
--- ARGV[4] the sweeper's name
+-- KEYS[1] parked orphans <p>:{i:<group>}:o
+-- ARGV[1] the click's field; ARGV[2] "<topic>/<partition>/" of the
+-- sweeping partition; ARGV[3] watermark (event time, ms)
 --
 -- Reply, first element a status:
 --   {"gone"}               no orphan (expired by TTL or already settled)
 --   {"other"}              the orphan belongs to another partition; kept
 --   {"claimed"}            it was joined to its click; deleted now
 --   {"later", deadline}    its deadline is after the watermark; kept
---   {"expired", fields}    unclaimed past its deadline (or marked expiring
---                          by an earlier sweep); marked, its hash returned
---                          flat
+--   {"expired", record}    unclaimed past its deadline (or marked expiring
+--                          by an earlier sweep); marked, its record
+--                          returned (see lookup.lua)
 
-local h = redis.call('HGETALL', KEYS[1])
-if #h == 0 then
+local v = redis.call('HGET', KEYS[1], ARGV[1])
+if not v then
   return {'gone'}
 end
-local o = {}
-for i = 1, #h, 2 do
-  o[h[i]] = h[i + 1]
-end
-if o['tp'] ~= ARGV[1] or o['pt'] ~= ARGV[2] then
+local st = string.sub(v, 1, 1)
+local nl = string.find(v, '\n', 2, true)
+local org = string.sub(v, 2, nl - 1)
+if string.sub(org, 1, #ARGV[2]) ~= ARGV[2] then
   return {'other'}
 end
-if o['s'] == 'c' then
-  redis.call('DEL', KEYS[1])
+if st == 'c' then
+  redis.call('HDEL', KEYS[1], ARGV[1])
   return {'claimed'}
 end
-if o['s'] ~= 'x' then
-  if tonumber(o['dl']) > tonumber(ARGV[3]) then
-    return {'later', o['dl']}
+if st ~= 'x' then
+  local nl2 = string.find(v, '\n', nl + 1, true)
+  local dl = string.sub(v, nl + 1, nl2 - 1)
+  if tonumber(dl) > tonumber(ARGV[3]) then
+    return {'later', dl}
   end
-  redis.call('HSET', KEYS[1], 's', 'x', 'sw', ARGV[4])
+  v = 'x' .. string.sub(v, 2)
+  redis.call('HSET', KEYS[1], ARGV[1], v)
 end
-return {'expired', h}
+return {'expired', v}

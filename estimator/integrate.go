@@ -1,6 +1,7 @@
 package estimator
 
 import (
+	"cmp"
 	"errors"
 	"fmt"
 	"math"
@@ -45,6 +46,9 @@ const (
 	ipMinTerms  = 6
 	ipMaxTerms  = 40
 	ipMaxRho    = 0.5
+	// ipMergeAge is the widest span of log ages merged into one pending
+	// bin (ten percent).
+	ipMergeAge = 0.0953
 )
 
 // seriesTerms returns the number of moments needed for q*max(G) up to rho
@@ -72,12 +76,28 @@ type ipData struct {
 // newIPData lays out prepared data for integration.
 func newIPData(p *prepared) *ipData {
 	d := &ipData{w: p.w, logW: math.Log(p.w), conv: p.conv, matUnconv: p.matUnconv}
+	// Pending bins by age, neighbours within ipMergeAge of each other
+	// merged at their clicks' mean log age: the pending term is smooth in
+	// the age, so this changes it only at second order in the log-age
+	// spread (about (log 1.1)^2/8 relative), and halves the work per node.
+	type bin struct{ la, u float64 }
+	var bins []bin
 	for j, u := range p.unconv {
 		if u > 0 && p.ages[j] > 0 {
-			d.logAge = append(d.logAge, p.logAges[j])
-			d.u = append(d.u, u)
+			bins = append(bins, bin{p.logAges[j], u})
 		}
 		d.clicks += p.clicks[j]
+	}
+	slices.SortFunc(bins, func(a, b bin) int { return cmp.Compare(a.la, b.la) })
+	for i := 0; i < len(bins); {
+		j, u, sum := i, 0.0, 0.0
+		for ; j < len(bins) && bins[j].la-bins[i].la <= ipMergeAge; j++ {
+			u += bins[j].u
+			sum += bins[j].u * bins[j].la
+		}
+		d.logAge = append(d.logAge, sum/u)
+		d.u = append(d.u, u)
+		i = j
 	}
 	d.clicks += p.matClicks
 	for k, c := range p.h {
@@ -607,7 +627,7 @@ const (
 
 // integratePosterior computes the posterior of q for the given parametric
 // families (averaged by marginal likelihood when more than one).
-func integratePosterior(d *FitData, families []DelayFamily, pr Prior) (*IntegratedPosterior, error) {
+func integratePosterior(d *FitData, families []DelayFamily, pr Prior, robust bool) (*IntegratedPosterior, error) {
 	pr = pr.WithDefaults()
 	if err := pr.Validate(); err != nil {
 		return nil, err
@@ -649,6 +669,28 @@ func integratePosterior(d *FitData, families []DelayFamily, pr Prior) (*Integrat
 			}
 			zlo = math.Min(zlo, n.z-ipZSpan*n.sz)
 			zhi = math.Max(zhi, n.z+ipZSpan*n.sz)
+		}
+	}
+	// The families' posterior modes, for the report and, with robust, as
+	// the starting point of the histogram alternative (see histmix.go).
+	fits := make([]*Fit, len(fams))
+	var best *Fit
+	bestMass := math.Inf(-1)
+	for fi, f := range fams {
+		fits[fi] = ev.modeFit(d, p, f)
+		mass := math.Inf(-1)
+		for i := range f.nodes {
+			mass = logAddExp(mass, f.weight(&f.nodes[i]))
+		}
+		if fits[fi] != nil && mass > bestMass {
+			best, bestMass = fits[fi], mass
+		}
+	}
+	var hist *histAlternative
+	if robust {
+		hist = histogramAlternative(p, d, best, pr)
+		if hist != nil && hist.spline != nil {
+			zlo, zhi = math.Min(zlo, hist.zlo), math.Max(zhi, hist.zhi)
 		}
 	}
 	zlo, zhi = math.Max(zlo, -40), math.Min(zhi, 40)
@@ -707,13 +749,30 @@ func integratePosterior(d *FitData, families []DelayFamily, pr Prior) (*Integrat
 	for i := range mix {
 		mix[i] = math.Inf(-1)
 	}
+	wh := 0.0
+	if hist != nil && hist.spline != nil {
+		wh = hist.weight()
+	}
 	for fi, f := range fams {
 		w := math.Exp(famLogZ[fi] - zTop)
-		fw := FamilyWeight{Family: f.family, Weight: w, LogEvidence: famLogZ[fi] - lb, Fit: ev.modeFit(d, p, f)}
+		fw := FamilyWeight{Family: f.family, Weight: w * (1 - wh), LogEvidence: famLogZ[fi] - lb, Fit: fits[fi]}
 		ip.Families = append(ip.Families, fw)
 		for i := range mix {
 			mix[i] = logAddExp(mix[i], logp[fi][i])
 		}
+	}
+	if wh > 0 {
+		// Mix the normalised parametric and histogram densities of z.
+		hv := make([]float64, len(zs))
+		for i, z := range zs {
+			hv[i] = hist.logDensity(z)
+		}
+		lzp := logSumExp(mix) + math.Log(dz)
+		lzh := logSumExp(hv) + math.Log(dz)
+		for i := range mix {
+			mix[i] = logAddExp(math.Log(1-wh)+mix[i]-lzp, math.Log(wh)+hv[i]-lzh)
+		}
+		ip.Families = append(ip.Families, FamilyWeight{Family: FamilyHistogram, Weight: wh, LogEvidence: math.NaN(), Fit: hist.fit})
 	}
 	// Density in q: p(q) = p(z) / (q (1-q)).
 	qs := make([]float64, len(zs))

@@ -176,7 +176,8 @@ func NewLikelihoodPosterior(d *FitData, f *Fit) (*GridPosterior, error) {
 //     weights proportional to their marginal likelihoods (Bayesian model
 //     averaging: Hoeting, Madigan, Raftery & Volinsky 1999, "Bayesian model
 //     averaging: a tutorial", Statistical Science 14:382-417), instead of
-//     a hard choice of one family;
+//     a hard choice of one family; once the whole window has been observed,
+//     the histogram family joins with a BIC weight (see histmix.go);
 //   - FamilyHistogram: the profile posterior of the non-parametric family
 //     (NewLikelihoodPosteriorWithOptions).
 //
@@ -185,9 +186,9 @@ func NewLikelihoodPosterior(d *FitData, f *Fit) (*GridPosterior, error) {
 func ArmPosterior(d *FitData, family DelayFamily, pr Prior, warm *Fit) (*IntegratedPosterior, error) {
 	switch family {
 	case FamilyAuto:
-		return integratePosterior(d, []DelayFamily{FamilyExponential, FamilyWeibull}, pr)
+		return integratePosterior(d, []DelayFamily{FamilyExponential, FamilyWeibull}, pr, true)
 	case FamilyExponential, FamilyWeibull:
-		return integratePosterior(d, []DelayFamily{family}, pr)
+		return integratePosterior(d, []DelayFamily{family}, pr, false)
 	case FamilyHistogram:
 		f, err := FitModel(d, FitOptions{Family: FamilyHistogram, Warm: warm})
 		if err != nil {

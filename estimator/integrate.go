@@ -228,21 +228,11 @@ func (e *ipEval) delayTerm(lk, ls float64) float64 {
 // delayAt fills e.g with G_j and returns D(u) and max G.
 func (e *ipEval) delayAt(lk, ls float64) (float64, float64) {
 	d := e.d
+	dll := e.delayTerm(lk, ls) // also fills the power cache for k
 	k := math.Exp(lk)
-	e.powers(k)
 	sk := math.Exp(-k * ls) // s^-k
 	xW := weibullX(d.logW, k, ls)
-	lFW := math.Log(-math.Expm1(-xW))
 	fw := -math.Expm1(-xW)
-	dll := 0.0
-	for i, c := range d.binN {
-		xlo := e.loK[i] * sk
-		xhi := xW
-		if d.binHi[i] != d.logW {
-			xhi = e.hiK[i] * sk
-		}
-		dll += c * (logFMass(xlo, xhi) - lFW)
-	}
 	gmax := 0.0
 	ew := math.Exp(-xW)
 	invFW := 1 / fw

@@ -196,34 +196,43 @@ func writeFitTable(w io.Writer, out *fitOutput) {
 		out.Counts.Clicks, out.Counts.Conversions, out.Counts.Rejected, out.Counts.FutureClicks+out.Counts.FutureConversions)
 	for _, e := range out.Experiments {
 		fmt.Fprintf(w, "\nexperiment %s: %s (policy %s, leader %s)\n", e.Experiment, e.Status, e.Policy, e.Leader)
+		switch {
+		case e.Settle.Settled:
+			fmt.Fprintf(w, "settled on %s at %s\n", e.Settle.Arm, e.SettledAt)
+		case e.Settle.Reason != "":
+			fmt.Fprintf(w, "not settled: %s\n", e.Settle.Reason)
+		}
 		tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
-		fmt.Fprintln(tw, "arm\tclicks\tconv\tobserved\tripe\teventual\t95% interval\tP(best)\tweight\tdelay\tmean h\tfit\t")
+		fmt.Fprintln(tw, "arm\tclicks\tconv\tobserved\tripe\teventual\t95% interval\tanytime bounds\tP(best)\tweight\tdelay\tmean h\t")
 		for _, a := range e.Arms {
-			fit := fmt.Sprintf("%d it", a.Delay.Iterations)
-			if !a.Delay.Converged {
-				fit += " (not converged)"
-			}
 			arm := a.Arm
 			if a.Paused {
 				arm += " (paused)"
 			}
-			fmt.Fprintf(tw, "%s\t%d\t%d\t%s\t%.0f\t%s\t%s–%s\t%.3f\t%.3f\t%s\t%.1f\t%s\t\n",
+			fmt.Fprintf(tw, "%s\t%d\t%d\t%s\t%.0f\t%s\t%s–%s\t%s–%s\t%.3f\t%.3f\t%s\t%.1f\t\n",
 				arm, a.Clicks, a.Conversions, pct(a.ObservedCVR), a.RipeClicks, pct(a.EventualCVR),
-				pct(a.CVRLow), pct(a.CVRHigh), a.PBest, a.Weight, delayParams(a.Delay), a.Delay.MeanHours, fit)
+				pct(a.CVRLow), pct(a.CVRHigh), pct(a.AnytimeLow), pct(a.AnytimeHigh), a.PBest, a.Weight, delayParams(a.Delay), a.Delay.MeanHours)
 		}
 		tw.Flush()
 	}
 }
 
-// delayParams names the delay family and its parameters briefly.
+// delayParams names the delay family and its parameters briefly, with its
+// posterior probability when families were averaged.
 func delayParams(d estimator.Delay) string {
+	var out string
 	switch d.Family {
 	case "exponential":
-		return fmt.Sprintf("exponential(rate %.3g/h)", d.RatePerHour)
+		out = fmt.Sprintf("exponential(rate %.3g/h)", d.RatePerHour)
 	case "weibull":
-		return fmt.Sprintf("weibull(shape %.2f, scale %.1fh)", d.Shape, d.ScaleHours)
+		out = fmt.Sprintf("weibull(shape %.2f, scale %.1fh)", d.Shape, d.ScaleHours)
+	default:
+		out = d.Family
 	}
-	return d.Family
+	if p, ok := d.Families[d.Family]; ok {
+		out += fmt.Sprintf(" p=%.2f", p)
+	}
+	return out
 }
 
 func pct(x float64) string { return strconv.FormatFloat(100*x, 'f', 2, 64) + "%" }

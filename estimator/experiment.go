@@ -205,6 +205,7 @@ func EvaluateExperiment(in ExperimentInput) (ExperimentReport, error) {
 			Conversions:        float64(ar.Conversions),
 			MaturedClicks:      float64(mc),
 			MaturedConversions: float64(mv),
+			PendingRipe:        math.Max(ar.RipeClicks-float64(mc), 0),
 		}
 		paused[i], names[i] = a.Paused, a.Arm
 	}

@@ -51,10 +51,14 @@ import (
 // for every j: the named arm is the best or within the tolerance of it.
 // Once settled an experiment stays settled on its arm, unless the evidence
 // reverses (some arm's lower bound rises above the settled arm's upper
-// bound); settled_at records when it first fired. The rule also waits for
-// burn-in and for the model's leader (largest P(best)) to agree with the
-// arm named, so a report never says "settled" on an arm the model ranks
-// below another.
+// bound, or its newer clicks clearly convert below its matured ones);
+// settled_at records when it first fired. The rule also waits for burn-in,
+// for no arm's newer clicks to convert clearly unlike its matured ones
+// (the named arm falling or a rival rising: the sequences assume stable
+// rates, and a change point would make them describe the past), and for
+// the model's leader (largest P(best)) to agree with the arm named, so a
+// report never says "settled" on an arm the model ranks below another.
+// These checks can only withhold a call, never make one.
 
 // SettleState is the settle decision carried from one evaluation to the
 // next (hysteresis).
@@ -159,7 +163,45 @@ type ArmEvidence struct {
 	// MaturedClicks are the clicks older than the attribution window and
 	// MaturedConversions how many of them converted.
 	MaturedClicks, MaturedConversions float64
+	// PendingRipe is the pending clicks weighted by the fitted probability
+	// that a conversion would have been seen by now (the ripe clicks less
+	// the matured ones); 0 turns the drift check off.
+	PendingRipe float64
 }
+
+// Drift returns the z-score of the conversions seen among the arm's
+// pending clicks against what its matured rate predicts for them: the
+// matured clicks are the older cohort, the pending ones the newer, so a
+// large |z| says the rate has moved (a change point) and the matured
+// evidence no longer describes the arm. The variance adds the Poisson
+// spread of the count to the uncertainty of the matured rate. ok is false
+// when there is too little of either cohort to tell.
+func (e ArmEvidence) Drift() (z float64, ok bool) {
+	if e.MaturedClicks < driftMinMatured || e.PendingRipe <= 0 {
+		return 0, false
+	}
+	qm := (e.MaturedConversions + 0.5) / (e.MaturedClicks + 1)
+	exp := qm * e.PendingRipe
+	if exp < driftMinExpected {
+		return 0, false
+	}
+	seen := e.Conversions - e.MaturedConversions
+	v := exp + e.PendingRipe*e.PendingRipe*qm*(1-qm)/e.MaturedClicks
+	return (seen - exp) / math.Sqrt(v), true
+}
+
+// Thresholds of the drift check.
+const (
+	// driftMinMatured and driftMinExpected: the check needs this many
+	// matured clicks and expected pending conversions.
+	driftMinMatured  = 200
+	driftMinExpected = 20
+	// driftBlock is the |z| beyond which a change blocks settling (the
+	// candidate falling or a rival rising); driftRelease the larger |z| by
+	// which a settled arm's fall releases the settle.
+	driftBlock   = 3.0
+	driftRelease = 4.0
+)
 
 // Bounds returns the arm's anytime-valid interval for its eventual rate at
 // level 1-alpha, intersecting the matured-click sequence and the all-click
@@ -260,7 +302,8 @@ func Settle(in SettleInput) (SettleOutcome, error) {
 		return out, nil
 	}
 	// Hysteresis: a settled experiment stays settled on its arm unless
-	// another arm is now known to be better.
+	// another arm is now known to be better, or the arm's newer clicks
+	// clearly convert below its matured ones (a change).
 	if in.Prev != nil {
 		if i := indexOf(in.Arms, in.Prev.Arm); i >= 0 && !in.Paused[i] {
 			reversed := false
@@ -268,6 +311,9 @@ func Settle(in SettleInput) (SettleOutcome, error) {
 				if j != i && !in.Paused[j] && out.Low[j] > out.High[i] {
 					reversed = true
 				}
+			}
+			if z, ok := in.Evidence[i].Drift(); ok && z < -driftRelease {
+				reversed = true
 			}
 			if !reversed {
 				out.Report.Settled, out.Report.Arm = true, in.Arms[i]
@@ -307,6 +353,22 @@ func Settle(in SettleInput) (SettleOutcome, error) {
 			parts = append(parts, fmt.Sprintf("%s (at least %.2f%%) is not yet ahead of %s", in.Arms[cand], 100*out.Low[cand], strings.Join(closeDetail, ", ")))
 		}
 		out.Report.Reason = strings.Join(parts, "; ")
+		return out, nil
+	}
+	// The bounds assume each arm's rate is stable; a clear change blocks.
+	var drifted []string
+	for j := range in.Arms {
+		if in.Paused[j] {
+			continue
+		}
+		z, ok := in.Evidence[j].Drift()
+		if ok && ((j == cand && z < -driftBlock) || (j != cand && z > driftBlock)) {
+			drifted = append(drifted, fmt.Sprintf("%s (z = %+.1f)", in.Arms[j], z))
+			out.Report.Blocking = append(out.Report.Blocking, in.Arms[j])
+		}
+	}
+	if len(drifted) > 0 {
+		out.Report.Reason = fmt.Sprintf("the newer clicks of %s convert unlike the matured ones: the rates may have changed", strings.Join(drifted, ", "))
 		return out, nil
 	}
 	if in.Leader != cand {

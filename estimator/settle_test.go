@@ -154,6 +154,12 @@ func TestSettleRule(t *testing.T) {
 	weak := ev(20000, 600, 15000, 450)    // 3%
 	close := ev(20000, 1150, 15000, 870)  // 5.8%
 	young := ev(20000, 600, 0, 0)
+	// With the drift check on: 5,000 pending clicks fully ripe, so the
+	// matured 6% predicts 300 conversions among them.
+	steady, fallen := strong, ev(20000, 1100, 15000, 900)
+	steady.PendingRipe, fallen.PendingRipe = 5000, 5000
+	risen := ev(20000, 800, 15000, 450) // 3% matured, 7% among the newer clicks
+	risen.PendingRipe = 5000
 	base := func() SettleInput {
 		return SettleInput{
 			Arms: []string{"a", "b"}, Evidence: []ArmEvidence{strong, weak}, Paused: []bool{false, false},
@@ -182,6 +188,13 @@ func TestSettleRule(t *testing.T) {
 		{"reversal unsettles", func(in *SettleInput) {
 			in.Prev = &SettleState{Arm: "b", At: 500}
 		}, true, "a", "", nil},
+		{"steady candidate settles", func(in *SettleInput) { in.Evidence[0] = steady }, true, "a", "", nil},
+		{"falling candidate blocks", func(in *SettleInput) { in.Evidence[0] = fallen }, false, "a", "newer clicks of a (z = -5", []string{"a"}},
+		{"rising rival blocks", func(in *SettleInput) { in.Evidence[1] = risen }, false, "a", "newer clicks of b (z = +", []string{"b"}},
+		{"fall releases a settle", func(in *SettleInput) {
+			in.Evidence[0] = fallen
+			in.Prev = &SettleState{Arm: "a", At: 500}
+		}, false, "a", "newer clicks of a", []string{"a"}},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
@@ -212,6 +225,27 @@ func TestSettleRule(t *testing.T) {
 				}
 			}
 		})
+	}
+}
+
+// TestArmEvidenceDrift checks the drift z-score on a worked example: 900
+// of 15,000 matured clicks converted (rate (900+1/2)/15,001), 5,000 ripe
+// pending clicks then predict 300.17 conversions with variance 300.17 +
+// 5000^2 q(1-q)/15000 = 394.2; 200 seen give z = -100.17/19.85 = -5.05.
+func TestArmEvidenceDrift(t *testing.T) {
+	e := ArmEvidence{Clicks: 20000, Conversions: 1100, MaturedClicks: 15000, MaturedConversions: 900, PendingRipe: 5000}
+	z, ok := e.Drift()
+	if !ok || math.Abs(z+5.045) > 0.01 {
+		t.Errorf("drift z = %v (ok %v), want about -5.05", z, ok)
+	}
+	for _, off := range []ArmEvidence{
+		{Clicks: 20000, Conversions: 1100, MaturedClicks: 100, MaturedConversions: 6, PendingRipe: 5000},
+		{Clicks: 20000, Conversions: 1100, MaturedClicks: 15000, MaturedConversions: 900},
+		{Clicks: 20000, Conversions: 1100, MaturedClicks: 15000, MaturedConversions: 900, PendingRipe: 100},
+	} {
+		if _, ok := off.Drift(); ok {
+			t.Errorf("drift checked on %+v", off)
+		}
 	}
 }
 

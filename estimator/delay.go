@@ -25,6 +25,11 @@ const (
 	// FamilyHistogram is the non-parametric delay: one discrete hazard per
 	// delay-histogram bin, with the bin's mass spread uniformly over the bin.
 	FamilyHistogram
+	// FamilyLognormal is the lognormal delay truncated at the window:
+	// G(a) = Phi((log a - mu)/sigma) / Phi((log W - mu)/sigma), median
+	// e^mu. It takes part in the auto average (ArmPosterior) only; FitModel
+	// does not fit it.
+	FamilyLognormal
 )
 
 // String returns the family's lower-case name.
@@ -38,6 +43,8 @@ func (f DelayFamily) String() string {
 		return "weibull"
 	case FamilyHistogram:
 		return "histogram"
+	case FamilyLognormal:
+		return "lognormal"
 	}
 	return fmt.Sprintf("DelayFamily(%d)", int(f))
 }
@@ -54,6 +61,10 @@ type delayDist struct {
 	xW       float64 // (W/s)^k
 	logFW    float64 // log F(W), the untruncated mass inside the window
 
+	// Lognormal family (k is sigma, s the median): zW = (log W - log s)/k
+	// and logPhiW = log Phi(zW), the untruncated mass inside the window.
+	zW, logPhiW float64
+
 	// Histogram family: edges e_0..e_K and hazards h_0..h_{K-1}; the last
 	// hazard is 1 so that G(W) = 1. logSurvEdge[i] = log S(e_i).
 	edges       []float64
@@ -68,6 +79,50 @@ func newParametric(family DelayFamily, k, s, w float64) delayDist {
 	d.xW = d.x(w)
 	d.logFW = math.Log(-math.Expm1(-d.xW))
 	return d
+}
+
+// newLognormal returns the lognormal delay with log-sd sigma and median m
+// truncated at w.
+func newLognormal(sigma, m, w float64) delayDist {
+	d := delayDist{family: FamilyLognormal, w: w, k: sigma, s: m, logScale: math.Log(m)}
+	d.zW = (math.Log(w) - d.logScale) / sigma
+	d.logPhiW = logPhi(d.zW)
+	return d
+}
+
+// logPhi returns log Phi(z), Phi the standard normal CDF, accurately in
+// both tails.
+func logPhi(z float64) float64 {
+	if z > 0 {
+		return math.Log1p(-upperTail(z))
+	}
+	return math.Log(upperTail(-z))
+}
+
+// upperTail returns Q(z) = 1 - Phi(z) = erfc(z/sqrt 2)/2.
+func upperTail(z float64) float64 { return 0.5 * math.Erfc(z/math.Sqrt2) }
+
+// logNormalMass returns log(Phi(b) - Phi(a)) for a < b, computed from the
+// tail where both lie so that it keeps its precision.
+func logNormalMass(a, b float64) float64 {
+	var m float64
+	if a > 0 {
+		m = upperTail(a) - upperTail(b)
+	} else {
+		m = upperTail(-b) - upperTail(-a)
+	}
+	if !(m > 0) {
+		return math.Inf(-1)
+	}
+	return math.Log(m)
+}
+
+// lnZ returns (log a - log median)/sigma, -Inf at a <= 0.
+func (d *delayDist) lnZ(a float64) float64 {
+	if a <= 0 {
+		return math.Inf(-1)
+	}
+	return (math.Log(a) - d.logScale) / d.k
 }
 
 // newHistogramDist returns the histogram-family delay with the given edges
@@ -142,9 +197,12 @@ func (d *delayDist) logSurv(a float64) float64 {
 	if a >= d.w {
 		return math.Inf(-1)
 	}
-	if d.family == FamilyHistogram {
+	switch d.family {
+	case FamilyHistogram:
 		i, f := binOf(d.edges, a)
 		return d.logSurvEdge[i] + log1mx(d.haz[i]*f)
+	case FamilyLognormal:
+		return logNormalMass(d.lnZ(a), d.zW) - d.logPhiW
 	}
 	return logFMass(d.x(a), d.xW) - d.logFW
 }
@@ -175,6 +233,18 @@ func (d *delayDist) logBinMasses(edges, dst []float64) {
 		}
 		return
 	}
+	if d.family == FamilyLognormal {
+		zlo := d.lnZ(edges[0])
+		for i := range dst {
+			zhi := d.zW
+			if i+1 < len(edges)-1 {
+				zhi = d.lnZ(edges[i+1])
+			}
+			dst[i] = logNormalMass(zlo, zhi) - d.logPhiW
+			zlo = zhi
+		}
+		return
+	}
 	xlo := d.x(edges[0])
 	for i := range dst {
 		xhi := d.xW
@@ -195,6 +265,12 @@ func (d *delayDist) mean() float64 {
 			m += p * (d.edges[i] + d.edges[i+1]) / 2
 		}
 		return m
+	}
+	if d.family == FamilyLognormal {
+		// E[D; D <= W] = e^(mu + sigma^2/2) Phi(zW - sigma) for the
+		// lognormal.
+		m := math.Exp(d.logScale + d.k*d.k/2 + logPhi(d.zW-d.k) - d.logPhiW)
+		return math.Min(m, d.w)
 	}
 	// E[D; D <= W] = s * Gamma(1+1/k) * P(1+1/k, (W/s)^k) for the Weibull,
 	// P the regularised lower incomplete gamma function.

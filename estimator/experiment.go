@@ -135,7 +135,8 @@ type Delay struct {
 	MeanHours float64 `json:"mean_hours"`
 	// RatePerHour is the exponential rate.
 	RatePerHour float64 `json:"rate_per_hour,omitempty"`
-	// Shape and ScaleHours are the Weibull parameters.
+	// Shape and ScaleHours are the Weibull's shape and scale, or the
+	// lognormal's sigma and median.
 	Shape      float64 `json:"shape,omitempty"`
 	ScaleHours float64 `json:"scale_hours,omitempty"`
 	// MedianHours is the median delay of converters in hours.
@@ -314,7 +315,7 @@ func describeDelay(f *Fit) Delay {
 	switch f.Family {
 	case FamilyExponential:
 		d.RatePerHour = f.Rate * 3600
-	case FamilyWeibull:
+	case FamilyWeibull, FamilyLognormal:
 		d.Shape = f.Shape
 		d.ScaleHours = f.Scale / 3600
 	}

@@ -80,8 +80,8 @@ type Fit struct {
 	Q float64
 	// Rate is the exponential family's rate per second (0 otherwise).
 	Rate float64
-	// Shape and Scale (seconds) are the Weibull family's parameters (0
-	// otherwise).
+	// Shape and Scale (seconds) are the Weibull family's parameters, or the
+	// lognormal's sigma and median (0 otherwise).
 	Shape, Scale float64
 	// Edges (seconds) and Hazards are the histogram family's bins and
 	// discrete hazards: Hazards[k] is the probability that a converter's
@@ -272,8 +272,11 @@ type emRun struct {
 
 // dist builds the delay distribution of par.
 func (r *emRun) dist(par params) delayDist {
-	if r.family == FamilyHistogram {
+	switch r.family {
+	case FamilyHistogram:
 		return newHistogramDist(r.p.edges, par.haz)
+	case FamilyLognormal:
+		return newLognormal(par.k, par.s, r.p.w)
 	}
 	return newParametric(r.family, par.k, par.s, r.p.w)
 }
@@ -807,7 +810,7 @@ func (r *emRun) assemble(d *FitData, par params, ll float64, iters int, conv boo
 	case FamilyExponential:
 		f.Rate = 1 / par.s
 		f.Params = 1
-	case FamilyWeibull:
+	case FamilyWeibull, FamilyLognormal:
 		f.Shape, f.Scale = par.k, par.s
 		f.Params = 2
 	case FamilyHistogram:

@@ -152,10 +152,10 @@ type ipEval struct {
 	// kq bounds f(z | u) - D(u) from above: the maximum over q of
 	// (C+a) log q + (U+b) log(1-q).
 	kq float64
-	// prior is the prior and weibull says whether nodes carry the shape
-	// prior (the Weibull family) or not (the exponential).
-	prior   Prior
-	weibull bool
+	// prior is the prior and family the family being integrated: u[0] is
+	// the log Weibull shape, the log lognormal sigma, or 0 (exponential).
+	prior  Prior
+	family DelayFamily
 	// unitRow holds the coarse row of shape 1 computed by the Weibull
 	// family without a pruning floor, keyed by the scale range's lower
 	// end, for the exponential family to reuse.
@@ -207,6 +207,9 @@ func weibullX(loga, k, ls float64) float64 {
 // delayTerm returns D(u) alone (the delay histogram's term), without
 // touching the pending bins: a cheap first look at a node.
 func (e *ipEval) delayTerm(lk, ls float64) float64 {
+	if e.family == FamilyLognormal {
+		return e.lognormalDelayTerm(lk, ls)
+	}
 	d := e.d
 	k := math.Exp(lk)
 	e.powers(k)
@@ -227,9 +230,20 @@ func (e *ipEval) delayTerm(lk, ls float64) float64 {
 
 // delayAt fills e.g with G_j and returns D(u) and max G.
 func (e *ipEval) delayAt(lk, ls float64) (float64, float64) {
+	return e.delayAtKnown(lk, ls, math.NaN())
+}
+
+// delayAtKnown is delayAt with D(u) given when already known (NaN: not).
+func (e *ipEval) delayAtKnown(lk, ls, dll float64) (float64, float64) {
+	if e.family == FamilyLognormal {
+		return e.lognormalDelayAt(lk, ls, dll)
+	}
 	d := e.d
-	dll := e.delayTerm(lk, ls) // also fills the power cache for k
+	if math.IsNaN(dll) {
+		dll = e.delayTerm(lk, ls)
+	}
 	k := math.Exp(lk)
+	e.powers(k)
 	sk := math.Exp(-k * ls) // s^-k
 	xW := weibullX(d.logW, k, ls)
 	fw := -math.Expm1(-xW)
@@ -246,6 +260,86 @@ func (e *ipEval) delayAt(lk, ls float64) (float64, float64) {
 		}
 		g := -em * invFW
 		dl := (1 + em - ew) * invFW
+		if g > 1 {
+			g, dl = 1, 0
+		}
+		if dl < 0 {
+			dl = 0
+		}
+		e.g[j], e.dl[j] = g, dl
+		if g > gmax {
+			gmax = g
+		}
+	}
+	return dll, gmax
+}
+
+// lognormalDelayTerm is delayTerm for the lognormal with log sigma lk and
+// log median ls.
+func (e *ipEval) lognormalDelayTerm(lk, ls float64) float64 {
+	d := e.d
+	sig := math.Exp(lk)
+	zW := (d.logW - ls) / sig
+	lpW := logPhi(zW)
+	// Upper and lower tails at each edge; consecutive bins share an edge,
+	// so the last upper edge's tails are kept for the next bin.
+	tails := func(z float64) (up, low float64) {
+		if math.IsInf(z, -1) {
+			return 1, 0
+		}
+		return upperTail(z), upperTail(-z)
+	}
+	prevZ, prevUp, prevLow := math.NaN(), 0.0, 0.0
+	dll := 0.0
+	for i, c := range d.binN {
+		zlo := (d.binLo[i] - ls) / sig // -Inf for the first edge
+		var upLo, lowLo float64
+		if zlo == prevZ {
+			upLo, lowLo = prevUp, prevLow
+		} else {
+			upLo, lowLo = tails(zlo)
+		}
+		zhi := zW
+		if d.binHi[i] != d.logW {
+			zhi = (d.binHi[i] - ls) / sig
+		}
+		upHi, lowHi := tails(zhi)
+		prevZ, prevUp, prevLow = zhi, upHi, lowHi
+		// Phi(zhi) - Phi(zlo) from the tail where both lie.
+		m := lowHi - lowLo
+		if zlo > 0 {
+			m = upLo - upHi
+		}
+		if !(m > 0) {
+			return math.Inf(-1)
+		}
+		dll += c * (math.Log(m) - lpW)
+	}
+	return dll
+}
+
+// lognormalDelayAt is delayAtKnown for the lognormal.
+func (e *ipEval) lognormalDelayAt(lk, ls, dll float64) (float64, float64) {
+	d := e.d
+	if math.IsNaN(dll) {
+		dll = e.lognormalDelayTerm(lk, ls)
+	}
+	sig := math.Exp(lk)
+	zW := (d.logW - ls) / sig
+	phiW := 1 - upperTail(zW)
+	qW := upperTail(zW)
+	inv := 1 / phiW
+	gmax := 0.0
+	for j, la := range d.logAge {
+		z := (la - ls) / sig
+		var g, dl float64
+		if z > 0 {
+			qz := upperTail(z)
+			g, dl = (1-qz)*inv, (qz-qW)*inv
+		} else {
+			pz := upperTail(-z)
+			g, dl = pz*inv, (phiW-pz)*inv
+		}
 		if g > 1 {
 			g, dl = 1, 0
 		}
@@ -478,8 +572,14 @@ func logSigmoid(z float64) float64 {
 // evalNode fills n (given n.u) with the delay term, moments, conditional
 // mode and Laplace marginal. z0 is a starting point for the mode.
 func (e *ipEval) evalNode(n *ipNode, z0 float64) {
+	e.evalNodeKnown(n, z0, math.NaN())
+}
+
+// evalNodeKnown is evalNode when the delay term at n.u is already known
+// (dll; NaN when not).
+func (e *ipEval) evalNodeKnown(n *ipNode, z0, dll float64) {
 	e.evals++
-	n.delayLL, n.gMax = e.delayAt(n.u[0], n.u[1])
+	n.delayLL, n.gMax = e.delayAtKnown(n.u[0], n.u[1], dll)
 	// Moments for q up to e^0.7 times the starting odds (a neighbouring
 	// node's mode); the exact sum covers any q beyond while the mode is
 	// sought, and the final grid adds terms where it needs them.
@@ -502,8 +602,11 @@ func (e *ipEval) evalNode(n *ipNode, z0 float64) {
 // integrated.
 func (e *ipEval) logPrior(u [2]float64) float64 {
 	lp := e.prior.logScaleDensity(u[1], e.d.logW)
-	if e.weibull {
+	switch e.family {
+	case FamilyWeibull:
 		lp += e.prior.logShapeDensity(u[0])
+	case FamilyLognormal:
+		lp += e.prior.logSigmaDensity(u[0])
 	}
 	return lp
 }
@@ -633,7 +736,7 @@ func integratePosterior(d *FitData, families []DelayFamily, pr Prior, robust boo
 	ev := newIPEval(data, pr)
 	// Weibull first, so the exponential can reuse its row of shape 1.
 	fams := make([]*ipFamily, len(families))
-	for _, want := range []DelayFamily{FamilyWeibull, FamilyExponential} {
+	for _, want := range []DelayFamily{FamilyWeibull, FamilyExponential, FamilyLognormal} {
 		for i, f := range families {
 			if f == want {
 				fams[i] = ev.integrateFamily(f, pr)
@@ -694,6 +797,7 @@ func integratePosterior(d *FitData, families []DelayFamily, pr Prior, robust boo
 	famLogZ := make([]float64, len(fams))
 	cut := massCut(fams, top)
 	for fi, f := range fams {
+		ev.family = f.family // delayAt below recomputes this family's nodes
 		acc := make([]float64, len(zs))
 		for ni := range f.nodes {
 			n := &f.nodes[ni]
@@ -833,11 +937,17 @@ func priorPosterior(d *FitData, families []DelayFamily, pr Prior) (*IntegratedPo
 	}
 	ip := &IntegratedPosterior{GridPosterior: g, Median: g.Quantile(0.5)}
 	for _, f := range families {
+		if f == FamilyLognormal {
+			continue // no data: its fit would say nothing FitModel's do not
+		}
 		fit, err := FitModel(d, FitOptions{Family: f})
 		if err != nil {
 			return nil, err
 		}
-		ip.Families = append(ip.Families, FamilyWeight{Family: f, Weight: 1 / float64(len(families)), Fit: fit})
+		ip.Families = append(ip.Families, FamilyWeight{Family: f, Fit: fit})
+	}
+	for i := range ip.Families {
+		ip.Families[i].Weight = 1 / float64(len(ip.Families))
 	}
 	return ip, nil
 }
@@ -886,7 +996,7 @@ func (e *ipEval) modeFit(d *FitData, p *prepared, f *ipFamily) *Fit {
 	}
 	r := &emRun{p: p, family: f.family}
 	par := params{q: sigmoid(n.z), k: 1, s: math.Exp(n.u[1])}
-	if f.family == FamilyWeibull {
+	if f.family == FamilyWeibull || f.family == FamilyLognormal {
 		par.k = math.Exp(n.u[0])
 	}
 	r.logS = make([]float64, len(p.ages))

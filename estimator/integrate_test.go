@@ -33,9 +33,12 @@ func denseQuantiles(t *testing.T, d *FitData, family DelayFamily, box ipBox, nk,
 	top := math.Inf(-1)
 	for a := range nk {
 		k, lpk := 1.0, 0.0
-		if family == FamilyWeibull {
-			lk := box.lo[0] + (float64(a)+0.5)/float64(nk)*(box.hi[0]-box.lo[0])
+		lk := box.lo[0] + (float64(a)+0.5)/float64(nk)*(box.hi[0]-box.lo[0])
+		switch family {
+		case FamilyWeibull:
 			k, lpk = math.Exp(lk), pr.logShapeDensity(lk)
+		case FamilyLognormal:
+			k, lpk = math.Exp(lk), pr.logSigmaDensity(lk)
 		}
 		for b := range ns {
 			ls := box.lo[1] + (float64(b)+0.5)/float64(ns)*(box.hi[1]-box.lo[1])
@@ -94,6 +97,18 @@ func qTerms(p *prepared, logS []float64, q float64) float64 {
 	return v
 }
 
+// truncLognormal draws lognormal delays with the given median and log-sd,
+// truncated at w (by rejection).
+func truncLognormal(median, sigma, w float64) func(*rand.Rand) float64 {
+	return func(r *rand.Rand) float64 {
+		for {
+			if d := median * math.Exp(sigma*r.NormFloat64()); d <= w {
+				return d
+			}
+		}
+	}
+}
+
 // TestIntegratedPosteriorMatchesDenseGrid checks the adaptive integration
 // of the delay parameters against a brute-force tensor grid over the same
 // posterior, on young data (most clicks pending, where the likelihood has
@@ -117,6 +132,7 @@ func TestIntegratedPosteriorMatchesDenseGrid(t *testing.T) {
 		{"young exponential", FamilyExponential, 0.7, 1000, truncExp(1/(8*3600.0), w), ipBox{hi: [2]float64{0, math.Log(10 * w)}, lo: [2]float64{0, math.Log(60)}}},
 		{"young weibull ridge", FamilyWeibull, 1, 6000, truncWeibull(0.6, daySec, w), ipBox{lo: [2]float64{math.Log(0.2), math.Log(60)}, hi: [2]float64{math.Log(5), math.Log(10 * w)}}},
 		{"older weibull", FamilyWeibull, 3, 8000, truncExp(1/(96*3600.0), w), ipBox{lo: [2]float64{math.Log(0.2), math.Log(60)}, hi: [2]float64{math.Log(5), math.Log(10 * w)}}},
+		{"young lognormal", FamilyLognormal, 1.5, 6000, truncLognormal(8*3600, 1.2, w), ipBox{lo: [2]float64{math.Log(0.2), math.Log(60)}, hi: [2]float64{math.Log(5), math.Log(10 * w)}}},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {

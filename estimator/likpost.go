@@ -170,9 +170,9 @@ func NewLikelihoodPosterior(d *FitData, f *Fit) (*GridPosterior, error) {
 // ArmPosterior returns the posterior of the eventual conversion probability
 // q of one arm's data under prior pr (zero fields take their defaults):
 //
-//   - FamilyExponential, FamilyWeibull: the delay parameters integrated out
+//   - FamilyExponential, FamilyWeibull, FamilyLognormal: the delay parameters integrated out
 //     over their whole prior support (see integrate.go);
-//   - FamilyAuto: the exponential and Weibull posteriors averaged with
+//   - FamilyAuto: the exponential, Weibull and lognormal posteriors averaged with
 //     weights proportional to their marginal likelihoods (Bayesian model
 //     averaging: Hoeting, Madigan, Raftery & Volinsky 1999, "Bayesian model
 //     averaging: a tutorial", Statistical Science 14:382-417), instead of
@@ -186,8 +186,8 @@ func NewLikelihoodPosterior(d *FitData, f *Fit) (*GridPosterior, error) {
 func ArmPosterior(d *FitData, family DelayFamily, pr Prior, warm *Fit) (*IntegratedPosterior, error) {
 	switch family {
 	case FamilyAuto:
-		return integratePosterior(d, []DelayFamily{FamilyExponential, FamilyWeibull}, pr, true)
-	case FamilyExponential, FamilyWeibull:
+		return integratePosterior(d, []DelayFamily{FamilyExponential, FamilyWeibull, FamilyLognormal}, pr, true)
+	case FamilyExponential, FamilyWeibull, FamilyLognormal:
 		return integratePosterior(d, []DelayFamily{family}, pr, false)
 	case FamilyHistogram:
 		f, err := FitModel(d, FitOptions{Family: FamilyHistogram, Warm: warm})

@@ -38,6 +38,12 @@ const (
 	// prior: from very heavy-tailed (0.2) to sharply peaked (5).
 	DefaultPriorShapeMin = 0.2
 	DefaultPriorShapeMax = 5
+	// DefaultPriorSigmaSpread is the standard deviation of the log of the
+	// lognormal's sigma around 0 (sigma 1): 95% of the prior between 0.3
+	// and 3.2. DefaultPriorSigmaMin and DefaultPriorSigmaMax truncate it.
+	DefaultPriorSigmaSpread = 0.6
+	DefaultPriorSigmaMin    = 0.2
+	DefaultPriorSigmaMax    = 5
 )
 
 // Prior is the prior distribution of one arm's model parameters. Every
@@ -48,9 +54,11 @@ const (
 //	q ~ Beta(QAlpha, QBeta)
 //	log(scale/W) ~ Normal(log ScaleMedian, ScaleSpread^2), truncated to [log ScaleMin, log ScaleMax]
 //	log(shape) ~ Normal(0, ShapeSpread^2), truncated to [log ShapeMin, log ShapeMax]   (Weibull only)
+//	log(sigma) ~ Normal(0, SigmaSpread^2), truncated to [log SigmaMin, log SigmaMax]   (lognormal only)
 //
-// independently. The scale is the exponential's mean delay (1/rate) or the
-// Weibull's scale before truncation at the window W. Normal priors on the
+// independently. The scale is the exponential's mean delay (1/rate), the
+// Weibull's scale or the lognormal's median, before truncation at the
+// window W. Normal priors on the
 // logarithm of a positive parameter whose order of magnitude is known
 // only roughly are the usual weakly informative choice (Gelman et al.,
 // Bayesian Data Analysis, 3rd ed., 2013, sections 2.9 and 5.7); they
@@ -73,6 +81,10 @@ type Prior struct {
 	// ShapeMin and ShapeMax truncate the Weibull shape prior. Default:
 	// DefaultPriorShapeMin, DefaultPriorShapeMax.
 	ShapeMin, ShapeMax float64
+	// SigmaSpread is the standard deviation of the log of the lognormal's
+	// sigma, and SigmaMin, SigmaMax truncate it. Defaults:
+	// DefaultPriorSigmaSpread, DefaultPriorSigmaMin, DefaultPriorSigmaMax.
+	SigmaSpread, SigmaMin, SigmaMax float64
 }
 
 // WithDefaults returns p with every zero field set to its default.
@@ -91,6 +103,9 @@ func (p Prior) WithDefaults() Prior {
 	def(&p.ShapeSpread, DefaultPriorShapeSpread)
 	def(&p.ShapeMin, DefaultPriorShapeMin)
 	def(&p.ShapeMax, DefaultPriorShapeMax)
+	def(&p.SigmaSpread, DefaultPriorSigmaSpread)
+	def(&p.SigmaMin, DefaultPriorSigmaMin)
+	def(&p.SigmaMax, DefaultPriorSigmaMax)
 	return p
 }
 
@@ -114,6 +129,9 @@ func (p Prior) Validate() error {
 	if !finitePos(p.ShapeSpread) {
 		errs = append(errs, fmt.Errorf("prior: Weibull shape spread %v must be positive", p.ShapeSpread))
 	}
+	if !finitePos(p.SigmaMin) || !finitePos(p.SigmaMax) || !(p.SigmaMin < 1 && p.SigmaMax > 1) || !finitePos(p.SigmaSpread) {
+		errs = append(errs, fmt.Errorf("prior: lognormal sigma range [%v, %v] must be positive and contain 1, spread %v positive", p.SigmaMin, p.SigmaMax, p.SigmaSpread))
+	}
 	return errors.Join(errs...)
 }
 
@@ -127,6 +145,12 @@ func (p Prior) logScaleDensity(ls, logW float64) float64 {
 // logShapeDensity returns the log prior density of the log Weibull shape.
 func (p Prior) logShapeDensity(lk float64) float64 {
 	return truncNormalLog(lk, 0, p.ShapeSpread, math.Log(p.ShapeMin), math.Log(p.ShapeMax))
+}
+
+// logSigmaDensity returns the log prior density of the log lognormal
+// sigma.
+func (p Prior) logSigmaDensity(ls float64) float64 {
+	return truncNormalLog(ls, 0, p.SigmaSpread, math.Log(p.SigmaMin), math.Log(p.SigmaMax))
 }
 
 // truncNormalLog is the log density at x of Normal(mu, sd^2) truncated to

@@ -75,8 +75,11 @@ func priorBox(pr Prior, w float64, family DelayFamily) ipBox {
 	lw := math.Log(w)
 	b := ipBox{}
 	b.lo[1], b.hi[1] = lw+math.Log(pr.ScaleMin), lw+math.Log(pr.ScaleMax)
-	if family == FamilyWeibull {
+	switch family {
+	case FamilyWeibull:
 		b.lo[0], b.hi[0] = math.Log(pr.ShapeMin), math.Log(pr.ShapeMax)
+	case FamilyLognormal:
+		b.lo[0], b.hi[0] = math.Log(pr.SigmaMin), math.Log(pr.SigmaMax)
 	}
 	return b
 }
@@ -99,9 +102,9 @@ func (e *ipEval) integrateFamily(family DelayFamily, pr Prior) *ipFamily {
 	start := e.evals
 	box := priorBox(pr, e.d.w, family)
 	fam := &ipFamily{family: family}
-	e.weibull = family == FamilyWeibull
+	e.family = family
 	var rows []ipRow
-	if family == FamilyWeibull {
+	if family == FamilyWeibull || family == FamilyLognormal {
 		rows = e.shapeRows(box)
 	} else {
 		// Shape 1 is the middle coarse row of the Weibull family (when the
@@ -155,7 +158,7 @@ func (e *ipEval) shapeRows(box ipBox) []ipRow {
 	for _, i := range middleOut(n) {
 		lk := box.lo[0] + (float64(i)+0.5)*hk
 		coarse[i] = e.coarseRow(lk, box, floor)
-		if math.Abs(lk) < 1e-12 && floor == math.Inf(-1) {
+		if e.family == FamilyWeibull && math.Abs(lk) < 1e-12 && floor == math.Inf(-1) {
 			e.unitRow[box.lo[1]] = coarse[i]
 		}
 		if coarse[i].mode.ok {
@@ -334,13 +337,14 @@ func (e *ipEval) coarseRow(lk float64, box ipBox, floor float64) ipRow {
 	h := (box.hi[1] - box.lo[1]) / float64(n)
 	row := ipRow{lk: lk, logMass: math.Inf(-1), sd: math.Inf(1)}
 	type cand struct {
-		i  int
-		ub float64
+		i       int
+		dll, ub float64
 	}
 	cands := make([]cand, n)
 	for i := range cands {
 		ls := box.lo[1] + (float64(i)+0.5)*h
-		cands[i] = cand{i, e.delayTerm(lk, ls) + e.logPrior([2]float64{lk, ls}) + e.kq + ipBoundSlack}
+		dll := e.delayTerm(lk, ls)
+		cands[i] = cand{i, dll, dll + e.logPrior([2]float64{lk, ls}) + e.kq + ipBoundSlack}
 	}
 	sort.Slice(cands, func(a, b int) bool { return cands[a].ub > cands[b].ub })
 	cells := make([]ipNode, n)
@@ -353,7 +357,7 @@ func (e *ipEval) coarseRow(lk float64, box ipBox, floor float64) ipRow {
 		nd := &cells[c.i]
 		nd.u = [2]float64{lk, box.lo[1] + (float64(c.i)+0.5)*h}
 		nd.vol = h
-		e.evalNode(nd, z0)
+		e.evalNodeKnown(nd, z0, c.dll)
 		if nd.ok {
 			z0 = nd.z
 			best = math.Max(best, nd.logM)

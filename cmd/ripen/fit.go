@@ -226,6 +226,8 @@ func delayParams(d estimator.Delay) string {
 		out = fmt.Sprintf("exponential(rate %.3g/h)", d.RatePerHour)
 	case "weibull":
 		out = fmt.Sprintf("weibull(shape %.2f, scale %.1fh)", d.Shape, d.ScaleHours)
+	case "lognormal":
+		out = fmt.Sprintf("lognormal(sigma %.2f, median %.1fh)", d.Shape, d.ScaleHours)
 	default:
 		out = d.Family
 	}

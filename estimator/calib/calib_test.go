@@ -278,7 +278,7 @@ func TestOptionsValidate(t *testing.T) {
 // bounds (Johnson, Kotz & Balakrishnan 1994, "Continuous Univariate
 // Distributions", vol. 1, 2nd ed., section 10.1; recalled from memory;
 // phi and Phi from gonum's distuv.UnitNormal), within 4 standard errors;
-// auto draws each family half the time.
+// auto draws each of its three parametric families a third of the time.
 func TestPriorDraw(t *testing.T) {
 	w := 7 * 24 * 3600.0
 	p := estimator.Prior{}.WithDefaults()
@@ -289,8 +289,9 @@ func TestPriorDraw(t *testing.T) {
 	}
 	inside := func(x, lo, hi float64) bool { return x >= lo*(1-1e-12) && x <= hi*(1+1e-12) }
 	r := rand.New(rand.NewPCG(5, 6))
-	var qs, logScales, logShapes []float64
+	var qs, logScales, logShapes, logSigmas []float64
 	weibulls := map[estimator.DelayFamily]int{}
+	lognormals := map[estimator.DelayFamily]int{}
 	const n = 4000
 	for _, fam := range DefaultFits {
 		for range n {
@@ -309,6 +310,13 @@ func TestPriorDraw(t *testing.T) {
 				logScales = append(logScales, math.Log(d.Scale/w))
 				logShapes = append(logShapes, math.Log(d.Shape))
 				weibulls[fam]++
+			case sim.Lognormal:
+				if !inside(d.Sigma, p.SigmaMin, p.SigmaMax) || !inside(d.Median/w, p.ScaleMin, p.ScaleMax) || fam != estimator.FamilyAuto {
+					t.Fatalf("%v: lognormal %+v", fam, d)
+				}
+				logScales = append(logScales, math.Log(d.Median/w))
+				logSigmas = append(logSigmas, math.Log(d.Sigma))
+				lognormals[fam]++
 			default:
 				t.Fatalf("%v: delay %T", fam, d)
 			}
@@ -322,13 +330,16 @@ func TestPriorDraw(t *testing.T) {
 		{"q", qs, 0.5},
 		{"log scale", logScales, truncMean(math.Log(p.ScaleMedian), p.ScaleSpread, math.Log(p.ScaleMin), math.Log(p.ScaleMax))},
 		{"log shape", logShapes, truncMean(0, p.ShapeSpread, math.Log(p.ShapeMin), math.Log(p.ShapeMax))},
+		{"log sigma", logSigmas, truncMean(0, p.SigmaSpread, math.Log(p.SigmaMin), math.Log(p.SigmaMax))},
 	} {
 		if m, se := sim.MeanSE(c.x); math.Abs(m-c.want) > 4*se {
 			t.Errorf("mean of %s %v ± %v, want %v", c.name, m, se, c.want)
 		}
 	}
-	if share := float64(weibulls[estimator.FamilyAuto]) / n; math.Abs(share-0.5) > 4*math.Sqrt(0.25/n) {
-		t.Errorf("auto draws the Weibull in %.3f of draws", share)
+	for name, got := range map[string]int{"Weibull": weibulls[estimator.FamilyAuto], "lognormal": lognormals[estimator.FamilyAuto]} {
+		if share := float64(got) / n; math.Abs(share-1.0/3) > 4*math.Sqrt(2.0/9/n) {
+			t.Errorf("auto draws the %s in %.3f of draws, want 1/3", name, share)
+		}
 	}
 }
 

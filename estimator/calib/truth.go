@@ -112,24 +112,32 @@ func truthDelay(r *rand.Rand, t TruthFamily, w float64) (sim.Distribution, error
 // function if the estimator's prior changes shape.
 //
 // q ~ Beta(QAlpha, QBeta); the delay scale (the exponential's mean, the
-// Weibull's scale) is log-normal around ScaleMedian windows with log
-// standard deviation ScaleSpread, truncated to [ScaleMin, ScaleMax]
-// windows; the Weibull shape is log-normal around 1 with log standard
-// deviation ShapeSpread, truncated to [ShapeMin, ShapeMax]. The histogram
-// family has no parametric prior: its truth is drawn as a Weibull (which
-// it contains); auto draws the exponential or the Weibull with probability
-// 1/2 each (equal prior odds of the families it averages).
+// Weibull's scale, the lognormal's median) is log-normal around
+// ScaleMedian windows with log standard deviation ScaleSpread, truncated
+// to [ScaleMin, ScaleMax] windows; the Weibull shape is log-normal around
+// 1 with log standard deviation ShapeSpread, truncated to [ShapeMin,
+// ShapeMax], and the lognormal's sigma likewise with SigmaSpread, SigmaMin
+// and SigmaMax. The histogram family has no parametric prior: its truth is
+// drawn as a Weibull (which it contains); auto draws the exponential, the
+// Weibull or the lognormal with probability 1/3 each (equal prior odds of
+// the families it averages; the histogram family, which joins auto only
+// once the window has been observed and by a BIC weight, is left out).
 func priorDraw(r *rand.Rand, family estimator.DelayFamily, w float64) (q float64, delay sim.Distribution) {
 	p := estimator.Prior{}.WithDefaults()
 	q = distuv.Beta{Alpha: p.QAlpha, Beta: p.QBeta, Src: r}.Rand()
 	scale := w * math.Exp(truncatedNormal(r, math.Log(p.ScaleMedian), p.ScaleSpread, math.Log(p.ScaleMin), math.Log(p.ScaleMax)))
-	weibull := family == estimator.FamilyWeibull || family == estimator.FamilyHistogram ||
-		(family == estimator.FamilyAuto && r.Float64() < 0.5)
-	if !weibull {
-		return q, sim.Exponential{Mean: scale}
+	if family == estimator.FamilyAuto {
+		family = []estimator.DelayFamily{estimator.FamilyExponential, estimator.FamilyWeibull, estimator.FamilyLognormal}[r.IntN(3)]
 	}
-	shape := math.Exp(truncatedNormal(r, 0, p.ShapeSpread, math.Log(p.ShapeMin), math.Log(p.ShapeMax)))
-	return q, sim.Weibull{Shape: shape, Scale: scale}
+	switch family {
+	case estimator.FamilyWeibull, estimator.FamilyHistogram:
+		shape := math.Exp(truncatedNormal(r, 0, p.ShapeSpread, math.Log(p.ShapeMin), math.Log(p.ShapeMax)))
+		return q, sim.Weibull{Shape: shape, Scale: scale}
+	case estimator.FamilyLognormal:
+		sigma := math.Exp(truncatedNormal(r, 0, p.SigmaSpread, math.Log(p.SigmaMin), math.Log(p.SigmaMax)))
+		return q, sim.Lognormal{Median: scale, Sigma: sigma}
+	}
+	return q, sim.Exponential{Mean: scale}
 }
 
 // truncatedNormal draws from Normal(mu, sd^2) restricted to [lo, hi] by

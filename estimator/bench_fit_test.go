@@ -105,18 +105,20 @@ func BenchmarkRefitExponential(b *testing.B) {
 
 // BenchmarkRefitPosterior measures the posterior of q of one arm
 // (ArmPosterior: fit and posterior together) for each delay family and
-// for auto, on the 1e6-click state.
+// for auto, on the 1e4- and 1e6-click states.
 func BenchmarkRefitPosterior(b *testing.B) {
-	s := benchState(b, 1e6)
-	d := s.FitData()
-	for _, fam := range []DelayFamily{FamilyAuto, FamilyExponential, FamilyWeibull, FamilyHistogram} {
-		b.Run(fam.String(), func(b *testing.B) {
-			for range b.N {
-				if _, err := ArmPosterior(&d, fam, Prior{}, nil); err != nil {
-					b.Fatal(err)
+	for _, sz := range benchSizes[:2] {
+		s := benchState(b, sz.clicks)
+		d := s.FitData()
+		for _, fam := range []DelayFamily{FamilyAuto, FamilyExponential, FamilyWeibull, FamilyLognormal, FamilyHistogram} {
+			b.Run(sz.name+"/"+fam.String(), func(b *testing.B) {
+				for range b.N {
+					if _, err := ArmPosterior(&d, fam, Prior{}, nil); err != nil {
+						b.Fatal(err)
+					}
 				}
-			}
-		})
+			})
+		}
 	}
 }
 

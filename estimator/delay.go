@@ -13,8 +13,11 @@ import (
 type DelayFamily int
 
 const (
-	// FamilyAuto fits every family below and keeps the one with the lowest
-	// AIC.
+	// FamilyAuto lets the data choose: FitModel fits the exponential,
+	// Weibull and histogram families and keeps the lowest AIC (the point
+	// fit), while ArmPosterior averages the exponential, Weibull and
+	// lognormal posteriors by their marginal likelihoods (plus the
+	// histogram by BIC once clicks have matured).
 	FamilyAuto DelayFamily = iota
 	// FamilyExponential is the exponential delay truncated at the window:
 	// G(a) = (1 - exp(-rate*a)) / (1 - exp(-rate*W)).

@@ -360,13 +360,19 @@ type DelayCurves struct {
 	Fit                           *estimator.Fit
 }
 
-// NewDelayCurves refits one arm's state with the given family and
-// computes its delay curves.
+// NewDelayCurves computes one arm's delay curves from the fit the
+// service reports for the given family: the most probable family's
+// posterior mode (estimator.ArmPosterior), so the chart draws the delay
+// the allocation table names.
 func NewDelayCurves(st *estimator.ArmState, family estimator.DelayFamily) (DelayCurves, error) {
 	data := st.FitData()
-	fit, err := estimator.FitModel(&data, estimator.FitOptions{Family: family})
+	post, err := estimator.ArmPosterior(&data, family, estimator.Prior{}, nil)
 	if err != nil {
-		return DelayCurves{}, fmt.Errorf("fit: %w", err)
+		return DelayCurves{}, fmt.Errorf("posterior: %w", err)
+	}
+	fit := post.Fit()
+	if fit == nil {
+		return DelayCurves{}, fmt.Errorf("posterior of family %v has no fit", family)
 	}
 	c := DelayCurves{Fit: fit}
 	if d := data.Delays; d.Count > 0 {
@@ -424,9 +430,12 @@ func delayCharts(v View, latest *Allocation, arms []string) ([]report.Chart, err
 		if st == nil {
 			continue
 		}
+		// The report names one family per arm; several family weights
+		// mean the service averaged them (auto), whose most probable
+		// family may be one only auto considers (lognormal).
 		family := estimator.FamilyAuto
 		if latest != nil {
-			if r := latest.arm(arm); r != nil {
+			if r := latest.arm(arm); r != nil && len(r.Delay.Families) == 0 {
 				if f, err := estimator.ParseDelayFamily(r.Delay.Family); err == nil {
 					family = f
 				}

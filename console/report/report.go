@@ -321,17 +321,33 @@ type ArmCVR struct {
 
 // CVRChart draws observed (dashed), eventual (solid, with its credible
 // band when given) and, when known, true (dotted) CVR per arm. The y axis
-// stops at cvrHeadroom times the highest line, so that the wide bands of
-// the first hours do not flatten the lines (the band is clipped there).
+// stops at cvrHeadroom times the lines' cvrTopQuantile (and never below
+// any line's latest value), so that neither the wide bands nor the noisy
+// estimates of the first hours flatten the lines; what lies above is
+// clipped.
 func CVRChart(title string, hours []float64, arms []ArmCVR) Chart {
 	c := Chart{ID: "cvr", Title: title, X: Axis{Label: "time since start", Unit: UnitHours}, Y: Axis{Label: "conversion rate", Unit: UnitPercent, Min: ptr(0)}}
-	var top, bandTop float64
+	var lines []float64
+	var last, highest float64
 	for _, a := range arms {
-		top = max(top, maxFinite(a.Observed), maxFinite(a.Eventual), maxFinite(a.True))
-		bandTop = max(bandTop, maxFinite(a.High))
+		for _, ys := range [][]float64{a.Observed, a.Eventual, a.True, a.High} {
+			highest = max(highest, maxFinite(ys))
+		}
+		for _, ys := range [][]float64{a.Observed, a.Eventual, a.True} {
+			for _, y := range ys {
+				if isFinite(y) {
+					lines = append(lines, y)
+				}
+			}
+			last = max(last, lastFinite(ys))
+		}
 	}
-	if top > 0 && bandTop > cvrHeadroom*top {
-		c.Y.Max = ptr(cvrHeadroom * top)
+	if len(lines) > 0 {
+		slices.Sort(lines)
+		top := max(lines[int(cvrTopQuantile*float64(len(lines)-1))], last)
+		if top > 0 && highest > cvrHeadroom*top {
+			c.Y.Max = ptr(cvrHeadroom * top)
+		}
 	}
 	for i, a := range arms {
 		ev := Series{Name: a.Arm, Role: "eventual", X: hours, Y: a.Eventual, Group: i}
@@ -346,8 +362,22 @@ func CVRChart(title string, hours []float64, arms []ArmCVR) Chart {
 	return c
 }
 
-// cvrHeadroom bounds the y axis of CVRChart relative to its highest line.
-const cvrHeadroom = 1.5
+// cvrHeadroom and cvrTopQuantile set the y axis of CVRChart: headroom
+// times the given quantile of every point of its lines.
+const (
+	cvrHeadroom    = 1.5
+	cvrTopQuantile = 0.95
+)
+
+// lastFinite is the last finite value of xs (0 if none).
+func lastFinite(xs []float64) float64 {
+	for i := len(xs) - 1; i >= 0; i-- {
+		if isFinite(xs[i]) {
+			return xs[i]
+		}
+	}
+	return 0
+}
 
 // maxFinite is the largest finite value of xs (0 if none).
 func maxFinite(xs []float64) float64 {

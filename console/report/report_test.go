@@ -5,6 +5,7 @@ import (
 	"encoding/json"
 	"math"
 	"regexp"
+	"slices"
 	"strings"
 	"testing"
 )
@@ -99,5 +100,57 @@ func TestNormalizeSteps(t *testing.T) {
 	}
 	if _, err := DelayCDFChart("d", []ArmDelay{{Arm: "a", GridHours: []float64{0, 1}, FittedCDF: []float64{0}}}); err == nil {
 		t.Fatal("mismatched grid accepted")
+	}
+}
+
+// TestCVRChartRange checks the y range of the CVR chart: early spikes and
+// wide bands are clipped, the latest values always show, and nothing is
+// clipped when the lines and bands fit.
+func TestCVRChartRange(t *testing.T) {
+	x := make([]float64, 40)
+	flat := make([]float64, 40)
+	spiky := make([]float64, 40)
+	wide := make([]float64, 40)
+	narrow := make([]float64, 40)
+	for i := range x {
+		x[i] = float64(2 * i)
+		flat[i] = 0.04
+		spiky[i] = 0.04
+		wide[i] = 0.05
+		narrow[i] = 0.045
+	}
+	spiky[0], spiky[1] = 0.5, 0.3 // two noisy estimates of the first hours
+	wide[0], wide[1] = 0.9, 0.7
+	rising := slices.Clone(flat)
+	rising[39] = 0.2 // the latest value is far above the rest
+	for _, tc := range []struct {
+		name     string
+		arms     []ArmCVR
+		clipped  bool
+		wantMax  float64
+		showLast float64
+	}{
+		{"early spike and band clipped", []ArmCVR{{Arm: "a", Observed: flat, Eventual: spiky, Low: flat, High: wide}}, true, 1.5 * 0.04, 0.04},
+		{"latest value stays visible", []ArmCVR{{Arm: "a", Observed: flat, Eventual: rising, Low: flat, High: rising}}, false, 0, 0.2},
+		{"narrow band not clipped", []ArmCVR{{Arm: "a", Observed: flat, Eventual: flat, Low: flat, High: narrow}}, false, 0, 0.045},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			c := CVRChart("CVR", x, tc.arms)
+			if !tc.clipped {
+				if c.Y.Max != nil {
+					t.Fatalf("y axis clipped at %v, want it to fit the data", *c.Y.Max)
+				}
+				return
+			}
+			if c.Y.Max == nil {
+				t.Fatal("y axis not clipped")
+			}
+			if math.Abs(*c.Y.Max-tc.wantMax) > 1e-12 {
+				t.Errorf("y max %v, want %v", *c.Y.Max, tc.wantMax)
+			}
+			if *c.Y.Max < tc.showLast {
+				t.Errorf("y max %v hides the latest value %v", *c.Y.Max, tc.showLast)
+			}
+		})
 	}
 }

@@ -8,7 +8,7 @@ import (
 
 // With auto, the non-parametric (histogram) delay family joins the
 // average once the whole window has been observed (some clicks have
-// matured), so that delays no parametric family can follow (two waves of
+// matured or are at least 95% of the window old: windowObserved), so that delays no parametric family can follow (two waves of
 // buyers, a lognormal body) do not leave a confidently wrong eventual
 // rate when the data are plentiful. Before that the histogram family says
 // nothing about conversions later than the oldest click's age, so it
@@ -44,6 +44,9 @@ const (
 	// histQuickMargin below histMinLogOdds is dropped.
 	histQuickIter   = 3
 	histQuickMargin = 30.0
+	// histWindowSeen is the oldest pending age, as a share of the window,
+	// from which the window counts as observed (windowObserved).
+	histWindowSeen = 0.95
 )
 
 // histAlternative is the histogram family's fit, its log odds against the
@@ -75,12 +78,30 @@ func (h *histAlternative) logDensity(z float64) float64 {
 	return h.spline.Predict(z)
 }
 
+// windowObserved reports whether the data reach (nearly) every delay
+// bin: some clicks have matured, or the oldest pending clicks are at least
+// histWindowSeen of the window old, so the hazards of all bins but the
+// last few have clicks at risk through them. (Pending ages are bucket
+// midpoints, within Layout.AgeError/2 of their clicks' ages, so an exact
+// "reached the last bin" test would hinge on the bucket grid.)
+func windowObserved(p *prepared) bool {
+	if p.matClicks > 0 {
+		return true
+	}
+	for i, a := range p.ages {
+		if a >= histWindowSeen*p.w && p.clicks[i] > 0 {
+			return true
+		}
+	}
+	return false
+}
+
 // histogramAlternative fits the histogram family to p, starting EM from
 // the parametric fit best (its delay distribution laid on the bins), and
 // returns it with its log odds against best; nil when the window has not
 // been observed yet or there are too few conversions.
 func histogramAlternative(p *prepared, d *FitData, best *Fit, pr Prior) *histAlternative {
-	if best == nil || p.matClicks == 0 || p.conv < histMinConversions {
+	if best == nil || !windowObserved(p) || p.conv < histMinConversions {
 		return nil
 	}
 	haz := make([]float64, len(p.h))

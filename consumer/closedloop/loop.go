@@ -66,6 +66,11 @@ type Options struct {
 	Registry *prometheus.Registry
 	// ClickIDPrefix starts every generated click id. Default: "qm-".
 	ClickIDPrefix string
+
+	// pauseBetweenWrites, when positive, is slept after every write of
+	// events to the broker in Drive (tests: it widens the gaps in which a
+	// partition with unread events looks idle to the service).
+	pauseBetweenWrites time.Duration
 }
 
 // Tick is the state of a run after one refit tick.
@@ -221,22 +226,29 @@ func (l *Loop) Drive(ctx context.Context, progress func(Tick)) (*Result, error) 
 			return nil, fmt.Errorf("closedloop: %w", err)
 		}
 		clicks, convs := gen.Chunk(tick+lagMs-sim.Start, weights)
-		// Everything but the chunk's last click, which alone is past the
-		// target, goes first; once the service has consumed it, the last
-		// click moves the watermark past the tick, so that the refit sees
-		// the whole chunk.
-		last := clicks[len(clicks)-1:]
-		if err := produce(ctx, clickW, clickMessages(sc.Name, arms, clicks[:len(clicks)-1])); err != nil {
-			return nil, err
-		}
-		if err := produce(ctx, convW, conversionMessages(convs)); err != nil {
-			return nil, err
-		}
-		if err := l.waitConsumed(ctx, kc, l.cfg.Kafka.ClickTopic, l.cfg.Kafka.ConversionTopic); err != nil {
-			return nil, err
-		}
-		if err := produce(ctx, clickW, clickMessages(sc.Name, arms, last)); err != nil {
-			return nil, err
+		// The chunk goes in rounds by event time: before the tick, at the
+		// tick, after it. Each of the first two is consumed (applied)
+		// before the next is written, so that the refit of the tick sees
+		// exactly the events up to it. The refit does not wait for the
+		// chunk's last click: once every partition is idle (the service's
+		// idle timeout is short here), the watermark is the latest time
+		// read anywhere, so a partition whose events were written but not
+		// read yet must never sit behind a partition that has read past
+		// the tick. Two events at exactly the tick's millisecond on
+		// different partitions can still race each other.
+		for i, r := range splitAtTick(tick, clicks, convs) {
+			if err := l.write(ctx, clickW, clickMessages(sc.Name, arms, r.clicks)); err != nil {
+				return nil, err
+			}
+			if err := l.write(ctx, convW, conversionMessages(r.convs)); err != nil {
+				return nil, err
+			}
+			if i == roundAfter || len(r.clicks)+len(r.convs) == 0 {
+				continue
+			}
+			if err := l.waitConsumed(ctx, kc, l.cfg.Kafka.ClickTopic, l.cfg.Kafka.ConversionTopic); err != nil {
+				return nil, err
+			}
 		}
 		var now consumer.MetricsReading
 		latest, ok, err := l.watch.waitTick(ctx, tick, func() bool {
@@ -286,6 +298,59 @@ func writer(brokers []string, topic string) *kafka.Writer {
 		Addr: kafka.TCP(brokers...), Topic: topic, Balancer: &kafka.Hash{},
 		RequiredAcks: kafka.RequireAll, BatchTimeout: 5 * time.Millisecond, BatchSize: 2000,
 	}
+}
+
+// Rounds of a chunk, in the order Drive writes them (see splitAtTick).
+const (
+	roundBefore = iota
+	roundAt
+	roundAfter
+	rounds
+)
+
+// round is the part of a chunk written in one round.
+type round struct {
+	clicks []sim.TrafficClick
+	convs  []sim.TrafficConversion
+}
+
+// splitAtTick splits a chunk by event time into the events before tick,
+// at tick and after it, keeping each part in order.
+func splitAtTick(tick int64, clicks []sim.TrafficClick, convs []sim.TrafficConversion) [rounds]round {
+	var out [rounds]round
+	at := func(ts int64) int {
+		switch {
+		case ts < tick:
+			return roundBefore
+		case ts == tick:
+			return roundAt
+		}
+		return roundAfter
+	}
+	for _, c := range clicks {
+		i := at(c.TS)
+		out[i].clicks = append(out[i].clicks, c)
+	}
+	for _, c := range convs {
+		i := at(c.TS)
+		out[i].convs = append(out[i].convs, c)
+	}
+	return out
+}
+
+// write produces msgs, then pauses when the options ask for it.
+func (l *Loop) write(ctx context.Context, w *kafka.Writer, msgs []kafka.Message) error {
+	if err := produce(ctx, w, msgs); err != nil {
+		return err
+	}
+	if d := l.opts.pauseBetweenWrites; d > 0 && len(msgs) > 0 {
+		select {
+		case <-ctx.Done():
+			return fmt.Errorf("closedloop: pause after writing to %s: %w", w.Topic, ctx.Err())
+		case <-time.After(d):
+		}
+	}
+	return nil
 }
 
 func produce(ctx context.Context, w *kafka.Writer, msgs []kafka.Message) error {

@@ -260,18 +260,22 @@ func (e *ipEval) delayAtKnown(lk, ls, dll float64) (float64, float64) {
 		}
 		g := -em * invFW
 		dl := (1 + em - ew) * invFW
-		if g > 1 {
-			g, dl = 1, 0
-		}
-		if dl < 0 {
-			dl = 0
-		}
+		g, dl = clampDelay(g, dl)
 		e.g[j], e.dl[j] = g, dl
 		if g > gmax {
 			gmax = g
 		}
 	}
 	return dll, gmax
+}
+
+// clampDelay keeps a pending bin's G(age) at most 1 and the bin's delay
+// mass non-negative against rounding.
+func clampDelay(g, dl float64) (float64, float64) {
+	if g > 1 {
+		return 1, 0
+	}
+	return g, max(dl, 0)
 }
 
 // lognormalDelayTerm is delayTerm for the lognormal with log sigma lk and
@@ -340,12 +344,7 @@ func (e *ipEval) lognormalDelayAt(lk, ls, dll float64) (float64, float64) {
 			pz := upperTail(-z)
 			g, dl = pz*inv, (phiW-pz)*inv
 		}
-		if g > 1 {
-			g, dl = 1, 0
-		}
-		if dl < 0 {
-			dl = 0
-		}
+		g, dl = clampDelay(g, dl)
 		e.g[j], e.dl[j] = g, dl
 		if g > gmax {
 			gmax = g

@@ -160,3 +160,27 @@ func TestBatteryScenarios(t *testing.T) {
 		}
 	}
 }
+
+// TestRandomScenarios: the randomly drawn scenarios of
+// testdata/scenarios/random (the settle rule's wider check) parse and
+// validate.
+func TestRandomScenarios(t *testing.T) {
+	files, err := filepath.Glob(filepath.Join("..", "..", "testdata", "scenarios", "random", "*.yaml"))
+	if err != nil || len(files) != 40 {
+		t.Fatalf("random scenarios: %d files, %v", len(files), err)
+	}
+	for _, f := range files {
+		r, err := os.Open(f)
+		if err != nil {
+			t.Fatal(err)
+		}
+		sc, err := ParseScenario(r)
+		r.Close()
+		if err != nil {
+			t.Fatalf("%s: %v", f, err)
+		}
+		if len(sc.Arms) < 2 || len(sc.Arms) > 4 {
+			t.Errorf("%s: %d arms, want 2 to 4", f, len(sc.Arms))
+		}
+	}
+}

@@ -146,15 +146,7 @@ func TestBatteryScenarios(t *testing.T) {
 		t.Fatalf("%d battery scenarios, want 6", len(files))
 	}
 	for _, name := range files {
-		f, err := os.Open(name)
-		if err != nil {
-			t.Fatal(err)
-		}
-		sc, err := ParseScenario(f)
-		f.Close()
-		if err != nil {
-			t.Fatalf("%s: %v", name, err)
-		}
+		sc := readScenario(t, name)
 		if sc.FitFamily != "auto" || sc.Horizon.D() < 3*sc.Window.D() {
 			t.Errorf("%s: fit %s, horizon %v, window %v", name, sc.FitFamily, sc.Horizon, sc.Window)
 		}
@@ -170,17 +162,25 @@ func TestRandomScenarios(t *testing.T) {
 		t.Fatalf("random scenarios: %d files, %v", len(files), err)
 	}
 	for _, f := range files {
-		r, err := os.Open(f)
-		if err != nil {
-			t.Fatal(err)
-		}
-		sc, err := ParseScenario(r)
-		r.Close()
-		if err != nil {
-			t.Fatalf("%s: %v", f, err)
-		}
+		sc := readScenario(t, f)
 		if len(sc.Arms) < 2 || len(sc.Arms) > 4 {
 			t.Errorf("%s: %d arms, want 2 to 4", f, len(sc.Arms))
 		}
 	}
+}
+
+// readScenario parses the scenario file name, failing the test if it
+// cannot.
+func readScenario(t *testing.T, name string) *Scenario {
+	t.Helper()
+	f, err := os.Open(name)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer f.Close()
+	sc, err := ParseScenario(f)
+	if err != nil {
+		t.Fatalf("%s: %v", name, err)
+	}
+	return sc
 }

@@ -82,15 +82,7 @@ func TestShippedScenarios(t *testing.T) {
 	var constantHour, slowBest bool
 	for _, f := range files {
 		t.Run(filepath.Base(f), func(t *testing.T) {
-			r, err := os.Open(f)
-			if err != nil {
-				t.Fatal(err)
-			}
-			defer r.Close()
-			sc, err := ParseScenario(r)
-			if err != nil {
-				t.Fatal(err)
-			}
+			sc := readScenario(t, f)
 			best, slowest := 0, 0
 			var slowMedian float64
 			for i, a := range sc.Arms {

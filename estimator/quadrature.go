@@ -4,6 +4,8 @@ import (
 	"math"
 	"slices"
 	"sort"
+
+	"gonum.org/v1/gonum/floats"
 )
 
 // The delay parameters are integrated by nested one-dimensional adaptive
@@ -169,7 +171,7 @@ func (e *ipEval) shapeRows(box ipBox) []ipRow {
 	for i, r := range coarse {
 		masses[i] = r.logMass
 	}
-	best := argmaxF(masses)
+	best := floats.MaxIdx(masses)
 	if math.IsInf(masses[best], -1) {
 		return nil
 	}
@@ -374,7 +376,7 @@ func (e *ipEval) coarseRow(lk float64, box ipBox, floor float64) ipRow {
 	if len(row.nodes) == 0 {
 		return row
 	}
-	b := argmaxF(vals)
+	b := floats.MaxIdx(vals)
 	row.mode = cells[b]
 	off, sd, narrow := peakOf(vals, b, h)
 	row.peak, row.sd, row.narrow = cells[b].u[1]+off, sd, narrow
@@ -766,17 +768,6 @@ func middleOut(n int) []int {
 		}
 	}
 	return out
-}
-
-// argmaxF returns the index of the largest value (the first on ties).
-func argmaxF(x []float64) int {
-	b := 0
-	for i, v := range x {
-		if v > x[b] {
-			b = i
-		}
-	}
-	return b
 }
 
 // at returns x[i], or -Inf outside the slice.

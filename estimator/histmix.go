@@ -152,20 +152,28 @@ func histogramAlternative(p *prepared, d *FitData, best *Fit, pr Prior) *histAlt
 		sd = 1 / math.Sqrt(-c2)
 	}
 	zs := linspace(z0-histProfileSpan*sd, z0+histProfileSpan*sd, histProfilePoints)
-	vs := make([]float64, len(zs))
-	mid := len(zs) / 2
-	warm := par.haz
-	for i := mid; i < len(zs); i++ {
-		vs[i], warm = prof(zs[i], warm)
-	}
-	warm = par.haz
-	for i := mid - 1; i >= 0; i-- {
-		vs[i], warm = prof(zs[i], warm)
-	}
+	vs := warmWalk(zs, len(zs)/2, par.haz, prof)
 	var nc interp.NaturalCubic
 	if err := nc.Fit(zs, vs); err != nil {
 		return h
 	}
 	h.zlo, h.zhi, h.spline = zs[0], zs[len(zs)-1], &nc
 	return h
+}
+
+// warmWalk returns at(x) for every x of xs, walking outwards from index
+// mid in both directions so that each evaluation starts from the hazards
+// its neighbour ended with (start for the first step each way): EM at
+// neighbouring fixed q converges in a few iterations from there.
+func warmWalk(xs []float64, mid int, start []float64, at func(x float64, warm []float64) (float64, []float64)) []float64 {
+	out := make([]float64, len(xs))
+	warm := start
+	for i := mid; i < len(xs); i++ {
+		out[i], warm = at(xs[i], warm)
+	}
+	warm = start
+	for i := mid - 1; i >= 0; i-- {
+		out[i], warm = at(xs[i], warm)
+	}
+	return out
 }

@@ -249,19 +249,8 @@ func NewLikelihoodPosteriorWithOptions(d *FitData, f *Fit, o PosteriorOptions) (
 		return ll
 	}
 	prepareAt := func(qs []float64) []float64 {
-		// Walk outwards from the MLE, warm-starting each point from its
-		// neighbour.
-		out := make([]float64, len(qs))
-		c := sort.SearchFloat64s(qs, f.Q)
-		warm := start.haz
-		for i := c; i < len(qs); i++ {
-			out[i], warm = at(qs[i], warm)
-		}
-		warm = start.haz
-		for i := c - 1; i >= 0; i-- {
-			out[i], warm = at(qs[i], warm)
-		}
-		return out
+		// Walk outwards from the MLE.
+		return warmWalk(qs, sort.SearchFloat64s(qs, f.Q), start.haz, at)
 	}
 	lo, hi := qRange(p, f, logPost)
 	qs := linspace(lo, hi, o.QPoints)

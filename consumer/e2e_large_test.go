@@ -9,7 +9,6 @@ import (
 	"math/rand/v2"
 	"reflect"
 	"slices"
-	"sort"
 	"sync"
 	"testing"
 	"time"
@@ -424,16 +423,6 @@ func storeResumeTotal(t *testing.T, st *state.Store, topics map[string]int) int6
 		}
 	}
 	return sum
-}
-
-// sortedReasons lists the reasons of m in order, for messages.
-func sortedReasons(m map[Reason]int) []string {
-	var out []string
-	for r, n := range m {
-		out = append(out, fmt.Sprintf("%s=%d", r, n))
-	}
-	sort.Strings(out)
-	return out
 }
 
 // startDeps is testEnv.start with every dependency given (the store

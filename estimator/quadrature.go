@@ -537,68 +537,6 @@ func peakOf(vals []float64, b int, h float64) (off, sd float64, narrow bool) {
 	return dx, sd, sd < ipNarrow*h
 }
 
-// fitPeak fits log mass = c0 + c1 x + c2 x^2 to rows by least squares and
-// returns the vertex and 1/sqrt(-2 c2).
-func fitPeak(rows []ipRow) (float64, float64, bool) {
-	var xs, ys []float64
-	for _, r := range rows {
-		if !math.IsInf(r.logMass, -1) {
-			xs = append(xs, r.lk)
-			ys = append(ys, r.logMass)
-		}
-	}
-	if len(xs) < 3 {
-		return 0, 0, false
-	}
-	// Centre x for conditioning, then solve the 3x3 normal equations.
-	mx := 0.0
-	for _, x := range xs {
-		mx += x
-	}
-	mx /= float64(len(xs))
-	var s [5]float64
-	var t [3]float64
-	for i, x := range xs {
-		d := x - mx
-		p := 1.0
-		for k := range 5 {
-			s[k] += p
-			if k < 3 {
-				t[k] += p * ys[i]
-			}
-			p *= d
-		}
-	}
-	a := [3][3]float64{{s[0], s[1], s[2]}, {s[1], s[2], s[3]}, {s[2], s[3], s[4]}}
-	c, ok := solve3(a, t)
-	if !ok || !(c[2] < 0) {
-		return 0, 0, false
-	}
-	return mx - c[1]/(2*c[2]), 1 / math.Sqrt(-2*c[2]), true
-}
-
-// solve3 solves a 3x3 linear system by Cramer's rule.
-func solve3(a [3][3]float64, b [3]float64) ([3]float64, bool) {
-	det := func(m [3][3]float64) float64 {
-		return m[0][0]*(m[1][1]*m[2][2]-m[1][2]*m[2][1]) -
-			m[0][1]*(m[1][0]*m[2][2]-m[1][2]*m[2][0]) +
-			m[0][2]*(m[1][0]*m[2][1]-m[1][1]*m[2][0])
-	}
-	d := det(a)
-	var x [3]float64
-	if d == 0 || math.IsNaN(d) {
-		return x, false
-	}
-	for c := range 3 {
-		m := a
-		for r := range 3 {
-			m[r][c] = b[r]
-		}
-		x[c] = det(m) / d
-	}
-	return x, true
-}
-
 // parabola returns, for the parabola through (-h, fm), (0, f0), (h, fp),
 // the offset of its vertex, the value there and its second derivative;
 // ok is false unless it opens downwards.

@@ -195,9 +195,6 @@ func (l *Loop) Store() *state.Store { return l.store }
 // Registry holds the service's metrics.
 func (l *Loop) Registry() *prometheus.Registry { return l.reg }
 
-// Config is the service's configuration.
-func (l *Loop) Config() consumer.Config { return l.cfg }
-
 // Drive feeds the scenario's traffic to the service until its horizon,
 // calling progress (if not nil) after every refit tick, and returns what
 // was published. The service keeps running afterwards, until Close.

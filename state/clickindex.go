@@ -1034,10 +1034,30 @@ func (s *Store) LookupConversions(ctx context.Context, convs []ConversionLookup)
 	// not used goes back, and the conversions refused in the round for
 	// want of room try again. Every round that allows one settles it or
 	// learns a generation, and generations are finite, so rounds end.
+	//
+	// A round takes one conversion per click, the first pending in batch
+	// order; the click's later ones wait for the next round. Otherwise a
+	// later conversion whose window covers fewer generations could park
+	// while the first one is sent back to learn a generation, and the
+	// first would then be refused as its duplicate: which conversion of a
+	// click counts would depend on when another writer sized a
+	// generation, not on the log.
 	for round := 0; len(pending) > 0; round++ {
 		if round > 64+len(convs) {
 			return nil, permanent(op, fmt.Errorf("%w: lookups kept finding new generations", ErrConflict))
 		}
+		var waiting []int
+		taken := make(map[string]bool, len(pending))
+		now := make([]int, 0, len(pending))
+		for _, i := range pending {
+			if id := convs[i].ClickID; taken[id] {
+				waiting = append(waiting, i)
+			} else {
+				taken[id] = true
+				now = append(now, i)
+			}
+		}
+		pending = now
 		allowed := make([]bool, len(pending))
 		calls := make([]scriptCall, len(pending))
 		gensOf := make([][]int64, len(pending))
@@ -1110,6 +1130,8 @@ func (s *Store) LookupConversions(ctx context.Context, convs []ConversionLookup)
 				}
 			}
 		}
+		pending = append(pending, waiting...)
+		slices.Sort(pending) // batch order
 	}
 	if err := dec.run(ctx, s, v.genMs); err != nil {
 		return nil, permanent(op, err)

@@ -4,6 +4,7 @@ import (
 	"fmt"
 	"hash/fnv"
 	"reflect"
+	"strconv"
 	"testing"
 	"time"
 
@@ -117,6 +118,50 @@ func TestClickIndexJoin(t *testing.T) {
 	}
 	if got, err := s.DueOrphans(ctx, "convs", 0, t0+1000, "test"); err != nil || len(got) != 0 {
 		t.Fatalf("sweep after settling: %v %v", got, err)
+	}
+}
+
+// TestLookupFirstConversionCounts: of two conversions of one click in a
+// call, the first in batch order is the one that parks and the second is
+// its duplicate, even when the first, whose window reaches a newer
+// generation, has to learn that generation in a second round. The
+// generation appears between the call's refresh and its scripts (another
+// writer sizing it); the test writes the group's copy of its size to
+// stand in for that writer.
+func TestLookupFirstConversionCounts(t *testing.T) {
+	s, rdb, _ := newStore(t, Options{OrphanTTL: time.Hour})
+	ctx := testCtx(t)
+	window := time.Hour
+	if _, err := s.IndexClicks(ctx, []ClickRecord{{ClickID: "other", Experiment: "e", Arm: "a", TS: t0, Window: window, Origin: "clicks/0/1"}}); err != nil {
+		t.Fatal(err)
+	}
+	s.ix.mu.Lock()
+	genMs := s.ix.genMs
+	s.ix.mu.Unlock()
+	later := ConversionLookup{ClickID: "k1", TS: t0 + 50*time.Minute.Milliseconds(), Origin: "convs/0/1", Raw: []byte("later"), Topic: "convs", Deadline: t0 + 2*window.Milliseconds()}
+	earlier := ConversionLookup{ClickID: "k1", TS: t0 + time.Minute.Milliseconds(), Origin: "convs/0/2", Raw: []byte("earlier"), Topic: "convs", Deadline: t0 + 2*window.Milliseconds()}
+	if floorDiv64(later.TS, genMs) <= floorDiv64(earlier.TS, genMs)+1 {
+		t.Fatalf("generation of %d ms: the two conversions must be more than one generation apart", genMs)
+	}
+	g := floorDiv64(later.TS, genMs) + 1
+	if err := rdb.HSet(ctx, s.keys.indexGens(refOf("k1").group), strconv.FormatInt(g, 10), 1).Err(); err != nil {
+		t.Fatal(err)
+	}
+	res, err := s.LookupConversions(ctx, []ConversionLookup{later, earlier})
+	if err != nil {
+		t.Fatal(err)
+	}
+	want := []LookupResult{{Status: LookupParked}, {Status: LookupDuplicate, Origin: "convs/0/1"}}
+	if !reflect.DeepEqual(res, want) {
+		t.Fatalf("lookups:\n got  %+v\n want %+v", res, want)
+	}
+	// The click comes and claims the first conversion.
+	put, err := s.IndexClicks(ctx, []ClickRecord{{ClickID: "k1", Experiment: "e", Arm: "a", TS: t0, Window: window, Origin: "clicks/0/2"}})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if o := put[0].Orphan; o == nil || o.Origin != "convs/0/1" {
+		t.Fatalf("click claimed %+v, want the conversion read first (convs/0/1)", o)
 	}
 }
 

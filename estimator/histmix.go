@@ -34,28 +34,30 @@ import (
 // K_param) once n is large against K. n is the number of conversions: the
 // hazards are informed by the converters (seen, or latent among the
 // pending clicks) at risk in each bin, about as many as the conversions,
-// not by every click (Volinsky & Raftery 2000, "Bayesian information criterion for
-// censored survival models", Biometrics 56:256-262, likewise count the
-// events of censored data). Burnham & Anderson (section 2.4, recalled from
-// memory) advise AICc whenever n/K is below about 40, which it is here:
-// dozens of hazards against hundreds or thousands of conversions.
+// not by every click (Volinsky & Raftery 2000, "Bayesian information
+// criterion for censored survival models", Biometrics 56:256-262,
+// likewise count the events of censored data). Burnham & Anderson
+// (section 2.4, recalled from memory) advise AICc whenever n/K is below
+// about 40, which it is here: dozens of hazards against hundreds or
+// thousands of conversions.
 //
 // The Schwarz (BIC) approximation used before, log Z ~ ll - (K/2) log n
 // (Schwarz 1978, "Estimating the dimension of a model", Annals of
 // Statistics 6:461-464), with n the clicks, charged each hazard (log n)/2,
 // 4 to 7 log units from 5,000 to 500,000 clicks, where AICc charges
 // n/(n-K-1): about 1.3 for 50 hazards on 200 conversions, 1.03 for 75 on
-// 2,500. The unit-information prior behind it is far too wide a yardstick for a
-// hazard that only the converters at risk in its bin inform. With two
-// waves of buyers at one window it kept the histogram family out although
-// no parametric family fitted, and the 95% interval of the eventual rate
-// held the truth in 0.79, 0.61 and 0.86 of replicates at 30, 300 and 3,000
-// clicks per hour. With AICc: 0.91, 0.94 and 0.94, the parametric truths'
-// cells within 0.02 of before; plain AIC covered as well (0.94, 0.95, 0.94) but at 30
-// clicks per hour let the histogram family in on fewer than 300
-// conversions, where its profile posterior sits high (eventual-rate error
-// 0.0076 against 0.0056 with AICc and 0.0042 with BIC), and on Weibull and
-// lognormal delays too (see DEVELOPERS.md for the grid).
+// 2,500. The unit-information prior behind it is far too wide a
+// yardstick for a hazard that only the converters at risk in its bin
+// inform. With two waves of buyers at one window it kept the histogram
+// family out although no parametric family fitted, and the 95% interval
+// of the eventual rate held the truth in 0.79, 0.61 and 0.86 of
+// replicates at 30, 300 and 3,000 clicks per hour. With AICc: 0.91, 0.94
+// and 0.94, the parametric truths' cells within 0.02 of before. Plain AIC
+// covered as well (0.94, 0.95, 0.94) but at 30 clicks per hour let the
+// histogram family in on fewer than 300 conversions, where its profile
+// posterior sits high (eventual-rate error 0.0076 against 0.0056 with
+// AICc and 0.0042 with BIC), and on Weibull and lognormal delays too (see
+// DEVELOPERS.md for the grid).
 //
 // Its posterior of q is the profile likelihood of
 // q (hazards at their conditional maximum) with the Jeffreys prior: with
@@ -71,9 +73,9 @@ const (
 	// (weight < 1e-3) the histogram family's posterior is not computed and
 	// it stays out. Leaving out a component of weight w moves every
 	// posterior probability, so the level of each interval end, by at
-	// most w: 0.1% of 95% here. Under AICc the histogram family often has
-	// weights from 1e-6 to 1e-3 on parametric delays, where profiling it
-	// (18 EM runs) would about double the arm's refit.
+	// most w: 0.1% of 95% here. Under AICc the histogram family can end
+	// with weights from 1e-6 to 1e-3 on parametric delays, where profiling
+	// it (18 EM runs) would about double the arm's refit.
 	histMinLogOdds = -7
 	// histProfilePoints and histProfileSpan: the profile likelihood is
 	// evaluated at this many points over ± this many standard deviations

@@ -17,7 +17,7 @@ const (
 	// Weibull and histogram families and keeps the lowest AIC (the point
 	// fit), while ArmPosterior averages the exponential, Weibull and
 	// lognormal posteriors by their marginal likelihoods (plus the
-	// histogram by BIC once clicks have matured).
+	// histogram by its AICc weight once the window has been observed).
 	FamilyAuto DelayFamily = iota
 	// FamilyExponential is the exponential delay truncated at the window:
 	// G(a) = (1 - exp(-rate*a)) / (1 - exp(-rate*W)).

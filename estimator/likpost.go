@@ -177,7 +177,7 @@ func NewLikelihoodPosterior(d *FitData, f *Fit) (*GridPosterior, error) {
 //     averaging: Hoeting, Madigan, Raftery & Volinsky 1999, "Bayesian model
 //     averaging: a tutorial", Statistical Science 14:382-417), instead of
 //     a hard choice of one family; once the whole window has been observed,
-//     the histogram family joins with a BIC weight (see histmix.go);
+//     the histogram family joins with its AICc weight (see histmix.go);
 //   - FamilyHistogram: the profile posterior of the non-parametric family
 //     (NewLikelihoodPosteriorWithOptions).
 //

@@ -121,7 +121,7 @@ func truthDelay(r *rand.Rand, t TruthFamily, w float64) (sim.Distribution, error
 // drawn as a Weibull (which it contains); auto draws the exponential, the
 // Weibull or the lognormal with probability 1/3 each (equal prior odds of
 // the families it averages; the histogram family, which joins auto only
-// once the window has been observed and by a BIC weight, is left out).
+// once the window has been observed and by its AICc weight, is left out).
 func priorDraw(r *rand.Rand, family estimator.DelayFamily, w float64) (q float64, delay sim.Distribution) {
 	p := estimator.Prior{}.WithDefaults()
 	q = distuv.Beta{Alpha: p.QAlpha, Beta: p.QBeta, Src: r}.Rand()

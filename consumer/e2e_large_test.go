@@ -346,6 +346,9 @@ func TestEndToEndLarge(t *testing.T) {
 	// Final state against the offline join at the stream's as-of time.
 	s := stream{clicks: ls.clicks[:len(ls.clicks)-1], convs: ls.convs, sentinel: ls.clicks[len(ls.clicks)-1], asOf: ls.clock}
 	off := checkAgainstOffline(t, env.store, s)
+	if t.Failed() {
+		explainCountedConversions(t, env, ls.convs, cfg.Kafka.ConversionTopic)
+	}
 	if off.Clicks != n+2*partitions {
 		t.Errorf("offline counted %d clicks, want %d", off.Clicks, n+2*partitions)
 	}
@@ -408,6 +411,47 @@ func TestEndToEndLarge(t *testing.T) {
 			t.Errorf("%s: served allocation %s (%v, %v), want the last published", id, served, ok, err)
 		}
 	}
+}
+
+// explainCountedConversions logs, for a failed comparison with the offline
+// join, the clicks whose counted conversion (the origin its conversion
+// marker holds) is not the first of the click's conversions in production
+// order, which is the one BuildOffline counts.
+func explainCountedConversions(t *testing.T, env *testEnv, produced []kafka.Message, topic string) {
+	t.Helper()
+	ctx := context.Background()
+	first := map[string]int64{}
+	for _, m := range produced {
+		if v, err := DecodeConversion(m.Value); err == nil {
+			if _, ok := first[v.ClickID]; !ok {
+				first[v.ClickID] = v.TS
+			}
+		}
+	}
+	byOrigin := map[string]Conversion{}
+	for _, m := range env.readAll(t, topic) {
+		if v, err := DecodeConversion(m.Value); err == nil {
+			byOrigin[origin(state.TopicPartition{Topic: m.Topic, Partition: m.Partition}, m.Offset)] = v
+		}
+	}
+	keys, err := env.redis.Client().Keys(ctx, "*:cv:*").Result()
+	if err != nil {
+		t.Logf("conversion markers: %v", err)
+		return
+	}
+	differ := 0
+	for _, k := range keys {
+		org, err := env.redis.Client().Get(ctx, k).Result()
+		v, ok := byOrigin[org]
+		if err != nil || !ok {
+			continue
+		}
+		if want := first[v.ClickID]; v.TS != want {
+			differ++
+			t.Logf("click %s: counted the conversion at %d (%s), the first produced is at %d", v.ClickID, v.TS, org, want)
+		}
+	}
+	t.Logf("%d of %d counted conversions are not their click's first", differ, len(keys))
 }
 
 // storeResumeTotal sums the resume offsets of every partition of topics.

@@ -322,6 +322,37 @@ func describeDelay(f *Fit) Delay {
 	return d
 }
 
+// CDF returns the delay distribution d describes, G(a) for a delay of a
+// seconds in an attribution window of window seconds: the inverse of
+// describeDelay for the exponential, Weibull and lognormal families. It
+// reports false for the histogram family (a report does not carry its
+// hazards) and for parameters that describe no distribution.
+func (d Delay) CDF(window float64) (func(float64) float64, bool) {
+	if !(window > 0) {
+		return nil, false
+	}
+	var dist delayDist
+	switch d.Family {
+	case FamilyExponential.String():
+		if !(d.RatePerHour > 0) {
+			return nil, false
+		}
+		dist = newParametric(FamilyExponential, 1, 3600/d.RatePerHour, window)
+	case FamilyWeibull.String(), FamilyLognormal.String():
+		if !(d.Shape > 0 && d.ScaleHours > 0) {
+			return nil, false
+		}
+		if d.Family == FamilyWeibull.String() {
+			dist = newParametric(FamilyWeibull, d.Shape, 3600*d.ScaleHours, window)
+		} else {
+			dist = newLognormal(d.Shape, 3600*d.ScaleHours, window)
+		}
+	default:
+		return nil, false
+	}
+	return dist.cdf, true
+}
+
 // medianDelay finds G(m) = 1/2 by bisection on [0, W] (G is monotone).
 func medianDelay(f *Fit) float64 {
 	lo, hi := 0.0, f.Window

@@ -1,6 +1,7 @@
 package estimator
 
 import (
+	"encoding/json"
 	"math"
 	"math/rand/v2"
 	"reflect"
@@ -125,5 +126,60 @@ func TestParseDelayFamily(t *testing.T) {
 	}
 	if _, err := ParseDelayFamily("lognormal"); err == nil {
 		t.Fatal("unknown family accepted")
+	}
+}
+
+// TestDelayCDFRoundTrip: the CDF rebuilt from a report's delay (through
+// its JSON) equals the fit's own, for every family a report can describe;
+// the histogram family, whose hazards a report does not carry, is refused.
+func TestDelayCDFRoundTrip(t *testing.T) {
+	const w = 7 * daySec
+	r := rand.New(rand.NewPCG(7, 7))
+	d := stateAt(simulate(r, 20000, 2*w, 0.06, truncExp(1/(1.5*daySec), w)), 2*w, Layout{})
+	ip, err := ArmPosterior(d, FamilyAuto, Prior{}, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	fits := map[DelayFamily]*Fit{}
+	for _, f := range ip.Families {
+		fits[f.Family] = f.Fit
+	}
+	hist, err := FitModel(d, FitOptions{Family: FamilyHistogram})
+	if err != nil {
+		t.Fatal(err)
+	}
+	fits[FamilyHistogram] = hist
+	for _, fam := range []DelayFamily{FamilyExponential, FamilyWeibull, FamilyLognormal, FamilyHistogram} {
+		f := fits[fam]
+		if f == nil {
+			t.Fatalf("no %v fit", fam)
+		}
+		b, err := json.Marshal(describeDelay(f))
+		if err != nil {
+			t.Fatal(err)
+		}
+		var rep Delay
+		if err := json.Unmarshal(b, &rep); err != nil {
+			t.Fatal(err)
+		}
+		g, ok := rep.CDF(w)
+		if fam == FamilyHistogram {
+			if ok {
+				t.Errorf("histogram delay rebuilt from a report")
+			}
+			continue
+		}
+		if !ok {
+			t.Fatalf("%v: no CDF from %s", fam, b)
+		}
+		for i := 0; i <= 50; i++ {
+			a := w * float64(i) / 50
+			if diff := math.Abs(g(a) - f.CDF(a)); diff > 1e-12 {
+				t.Errorf("%v: G(%.0f s) = %v from the report, %v from the fit", fam, a, g(a), f.CDF(a))
+			}
+		}
+	}
+	if _, ok := (Delay{Family: "weibull", Shape: 1.2}).CDF(w); ok {
+		t.Errorf("a Weibull without a scale was accepted")
 	}
 }

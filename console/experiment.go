@@ -357,13 +357,14 @@ type DelayCurves struct {
 	// AsObserved the CDF the fit predicts for the delays observed so far
 	// (young clicks can only show short delays).
 	GridHours, Fitted, AsObserved []float64
-	Fit                           *estimator.Fit
+	// Family names the delay family of the fit.
+	Family string
 }
 
-// NewDelayCurves computes one arm's delay curves from the fit the
-// service reports for the given family: the most probable family's
-// posterior mode (estimator.ArmPosterior), so the chart draws the delay
-// the allocation table names.
+// NewDelayCurves computes one arm's delay curves from the fit of the
+// given family the service would report for st: the most probable
+// family's posterior mode (estimator.ArmPosterior). delayCharts uses it
+// only when the allocation's report cannot describe the delay itself.
 func NewDelayCurves(st *estimator.ArmState, family estimator.DelayFamily) (DelayCurves, error) {
 	data := st.FitData()
 	post, err := estimator.ArmPosterior(&data, family, estimator.Prior{}, nil)
@@ -374,7 +375,13 @@ func NewDelayCurves(st *estimator.ArmState, family estimator.DelayFamily) (Delay
 	if fit == nil {
 		return DelayCurves{}, fmt.Errorf("posterior of family %v has no fit", family)
 	}
-	c := DelayCurves{Fit: fit}
+	return delayCurves(&data, fit.Family.String(), fit.CDF), nil
+}
+
+// delayCurves computes the delay curves of data under the delay CDF g
+// (seconds) of the named family.
+func delayCurves(data *estimator.FitData, family string, g func(float64) float64) DelayCurves {
+	c := DelayCurves{Family: family}
 	if d := data.Delays; d.Count > 0 {
 		var cum float64
 		c.EdgesHours = append(c.EdgesHours, 0)
@@ -390,24 +397,24 @@ func NewDelayCurves(st *estimator.ArmState, family estimator.DelayFamily) (Delay
 	// normalised by q*(ripe clicks) this is the CDF of observed delays.
 	ripe := data.MaturedClicks
 	for _, b := range data.Pending {
-		ripe += b.Clicks * fit.CDF(b.Age)
+		ripe += b.Clicks * g(b.Age)
 	}
 	for j := 0; j <= delayGridPoints; j++ {
 		x := data.Window * float64(j) / delayGridPoints
-		g := fit.CDF(x)
-		obs := data.MaturedClicks * g
+		gx := g(x)
+		obs := data.MaturedClicks * gx
 		for _, b := range data.Pending {
-			obs += b.Clicks * fit.CDF(min(x, b.Age))
+			obs += b.Clicks * g(min(x, b.Age))
 		}
 		c.GridHours = append(c.GridHours, x/3600)
-		c.Fitted = append(c.Fitted, g)
+		c.Fitted = append(c.Fitted, gx)
 		if ripe > 0 {
 			c.AsObserved = append(c.AsObserved, obs/ripe)
 		} else {
 			c.AsObserved = append(c.AsObserved, math.NaN())
 		}
 	}
-	return c, nil
+	return c
 }
 
 // delayCharts draws the delay histogram of each arm against its fit, and
@@ -430,18 +437,7 @@ func delayCharts(v View, latest *Allocation, arms []string) ([]report.Chart, err
 		if st == nil {
 			continue
 		}
-		// The report names one family per arm; several family weights
-		// mean the service averaged them (auto), whose most probable
-		// family may be one only auto considers (lognormal).
-		family := estimator.FamilyAuto
-		if latest != nil {
-			if r := latest.arm(arm); r != nil && len(r.Delay.Families) == 0 {
-				if f, err := estimator.ParseDelayFamily(r.Delay.Family); err == nil {
-					family = f
-				}
-			}
-		}
-		c, err := NewDelayCurves(st, family)
+		c, err := armDelayCurves(st, latest, arm)
 		if err != nil {
 			return nil, fmt.Errorf("arm %q: %w", arm, err)
 		}
@@ -449,7 +445,7 @@ func delayCharts(v View, latest *Allocation, arms []string) ([]report.Chart, err
 			report.Series{Name: arm, Role: "observed", X: c.EdgesHours, Y: c.Empirical, Group: i, Step: true},
 			report.Series{Name: arm, Role: "predicted by the fit", X: c.GridHours, Y: c.AsObserved, Group: i, Style: report.StyleDashed})
 		model.Series = append(model.Series, report.Series{Name: arm, Role: "fitted", X: c.GridHours, Y: c.Fitted, Group: i})
-		families = append(families, fmt.Sprintf("%s: %s", arm, c.Fit.Family))
+		families = append(families, fmt.Sprintf("%s: %s", arm, c.Family))
 		if v.Truth != nil && v.Truth.DelayCDF[arm] != nil {
 			tr := make([]float64, len(c.GridHours))
 			for j, h := range c.GridHours {
@@ -462,6 +458,29 @@ func delayCharts(v View, latest *Allocation, arms []string) ([]report.Chart, err
 		model.Note += " Families: " + strings.Join(families, ", ") + "."
 	}
 	return []report.Chart{obs, model}, nil
+}
+
+// armDelayCurves computes arm's delay curves under the delay the latest
+// allocation reports for it, which the service fitted when it computed
+// the allocation. Without an allocation, or when the report cannot
+// describe the delay (the histogram family), the arm's posterior is
+// computed again: with the reported single family, or auto.
+func armDelayCurves(st *estimator.ArmState, latest *Allocation, arm string) (DelayCurves, error) {
+	data := st.FitData()
+	family := estimator.FamilyAuto
+	if latest != nil {
+		if r := latest.arm(arm); r != nil {
+			if g, ok := r.Delay.CDF(data.Window); ok {
+				return delayCurves(&data, r.Delay.Family, g), nil
+			}
+			if len(r.Delay.Families) == 0 {
+				if f, err := estimator.ParseDelayFamily(r.Delay.Family); err == nil {
+					family = f
+				}
+			}
+		}
+	}
+	return NewDelayCurves(st, family)
 }
 
 // settingsTable lists the settings in force and where each comes from.

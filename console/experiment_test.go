@@ -274,3 +274,42 @@ func approxEqual(a, b []float64) bool {
 	}
 	return true
 }
+
+// TestArmDelayCurvesFromReport: with an allocation whose report describes
+// the arm's delay, the chart draws that delay, not a refit of the state:
+// here a Weibull the yarn data (exponential delays) would never give,
+// checked against the Weibull CDF truncated at the window, (1 -
+// exp(-(x/s)^k)) / (1 - exp(-(W/s)^k)) (Weibull 1951, "A statistical
+// distribution function of wide applicability", J. Appl. Mech. 18:293-297;
+// truncation by conditioning on D <= W). A histogram delay, which a report
+// cannot describe, is fitted again in its own family.
+func TestArmDelayCurvesFromReport(t *testing.T) {
+	asOf := reportT0 + (4 * 24 * time.Hour).Milliseconds()
+	states := yarnStates(t, 2000, 3*24*time.Hour, 0, asOf, 3)
+	arm := yarnArms[0].name
+	st := states[arm]
+	const k, sHours = 2.5, 30.0
+	var alloc Allocation
+	alloc.Arms = []estimator.ArmReport{{Arm: arm, Delay: estimator.Delay{Family: "weibull", Shape: k, ScaleHours: sHours}}}
+	c, err := armDelayCurves(st, &alloc, arm)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if c.Family != "weibull" {
+		t.Errorf("family %q, want weibull", c.Family)
+	}
+	w := st.FitData().Window
+	g := func(x float64) float64 {
+		s := sHours * 3600
+		return -math.Expm1(-math.Pow(x/s, k)) / -math.Expm1(-math.Pow(w/s, k))
+	}
+	for j, h := range c.GridHours {
+		if d := math.Abs(c.Fitted[j] - g(h*3600)); d > 1e-12 {
+			t.Fatalf("G(%vh) = %v, want %v", h, c.Fitted[j], g(h*3600))
+		}
+	}
+	alloc.Arms[0].Delay = estimator.Delay{Family: "histogram"}
+	if c, err = armDelayCurves(st, &alloc, arm); err != nil || c.Family != "histogram" {
+		t.Fatalf("histogram report: family %q, %v; want a histogram refit", c.Family, err)
+	}
+}

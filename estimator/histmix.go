@@ -164,17 +164,16 @@ func histogramAlternative(p *prepared, d *FitData, best *Fit, pr Prior) *histAlt
 	// iterations: when a short run leaves the histogram family far behind,
 	// it stays out without running to convergence.
 	run := &emRun{p: p, family: FamilyHistogram}
-	penalty := func(f *Fit) float64 { return histPenalty(f, best) }
 	par, ll, iters, conv := run.run(params{q: best.Q, haz: haz}, histQuickIter, 1e-10, nil)
 	fit := run.assemble(d, par, ll, iters, conv)
-	h := &histAlternative{fit: fit}
-	if h.logOdds = (ll - best.LogLik) - penalty(fit); h.logOdds < histMinLogOdds-histQuickMargin {
+	h := &histAlternative{fit: fit, logOdds: histLogOdds(fit, best)}
+	if h.logOdds < histMinLogOdds-histQuickMargin {
 		return h
 	}
 	if !conv {
 		par, ll, iters, conv = run.run(par, DefaultFitMaxIter, 1e-10, nil)
 		fit = run.assemble(d, par, ll, iters+histQuickIter, conv)
-		h = &histAlternative{fit: fit, logOdds: (ll - best.LogLik) - penalty(fit)}
+		h = &histAlternative{fit: fit, logOdds: histLogOdds(fit, best)}
 	}
 	if h.logOdds < histMinLogOdds || !(par.q > 0 && par.q < 1) {
 		return h
@@ -205,6 +204,13 @@ func histogramAlternative(p *prepared, d *FitData, best *Fit, pr Prior) *histAlt
 	}
 	h.zlo, h.zhi, h.spline = zs[0], zs[len(zs)-1], &nc
 	return h
+}
+
+// histLogOdds returns the log odds of the histogram fit h against the
+// parametric fit best: the gain in maximised log-likelihood less
+// histPenalty.
+func histLogOdds(h, best *Fit) float64 {
+	return h.LogLik - best.LogLik - histPenalty(h, best)
 }
 
 // histPenalty is the penalty of the histogram fit h against the
